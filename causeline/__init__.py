@@ -1,0 +1,1 @@
+"""The ``causeline`` command line: one entry point over ``training`` and ``service``."""

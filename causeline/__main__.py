@@ -1,0 +1,3 @@
+from causeline.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,142 @@
+"""``causeline``: train, explain (and later serve and group) from the command line.
+
+Errors a user can fix print one line and exit with status 2; anything unexpected prints one line
+too, with the traceback only when ``CAUSELINE_DEBUG=1``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import traceback
+from collections import Counter
+from collections.abc import Sequence
+from pathlib import Path
+
+from service.errors import CauselineError
+
+EXIT_USER_ERROR = 2
+EXIT_INTERNAL_ERROR = 3
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="causeline",
+        description="Event prediction with exact reason codes, and root-cause groups.",
+    )
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    train = commands.add_parser("train", help="train a bundle from a table of historical events")
+    train.add_argument("--config", required=True, type=Path, help="data-set config (YAML)")
+    train.add_argument("--data", required=True, type=Path, help="event table (CSV or Parquet)")
+    train.add_argument("--out", required=True, type=Path, help="bundle folder to write")
+    train.set_defaults(run=_train)
+
+    explain = commands.add_parser("explain", help="score events and attach reason codes")
+    explain.add_argument("--bundle", required=True, type=Path)
+    explain.add_argument("--input", required=True, type=Path, help="CSV, JSONL or Parquet")
+    explain.add_argument("--out", required=True, type=Path, help="CSV, JSONL or Parquet")
+    explain.add_argument("--top", type=int, default=None, help="reason codes per event")
+    explain.add_argument(
+        "--all-contributions",
+        action="store_true",
+        help="add every feature's contribution and the base value",
+    )
+    explain.set_defaults(run=_explain)
+    return parser
+
+
+def _train(args: argparse.Namespace) -> int:
+    from training.pipeline import train
+
+    result = train(args.config, args.data, args.out)
+    manifest = result.manifest
+    metrics = manifest.metrics
+    print(f"bundle: {result.path} ({manifest.name} {manifest.version})")
+    print(
+        f"rows: {manifest.training['rows']}  events: {manifest.training['events']}  "
+        f"split: {manifest.training['split']['method']}  trees: "
+        f"{manifest.training['best_iteration']}"
+    )
+    for key in ("roc_auc", "pr_auc", "brier", "precision_at_threshold", "recall_at_threshold"):
+        value = metrics.get(key)
+        print(f"held-out {key}: {'n/a' if value is None else f'{value:.4f}'}")
+    print(f"threshold: {manifest.decision.threshold:.4f} ({manifest.decision.rule})")
+    return 0
+
+
+def _explain(args: argparse.Namespace) -> int:
+    from service.bundle import load_bundle
+    from service.csvsafe import escape_frame
+    from service.explain import Explainer
+    from service.report import explanation_frame, explanation_records
+    from service.storage import atomic_file
+    from service.tables import read_table, table_format, write_table
+
+    if args.top is not None and args.top < 1:
+        raise CauselineError("--top must be at least 1")
+    bundle = load_bundle(args.bundle)
+    kind = table_format(args.out)
+    table = read_table(args.input, text_columns=[bundle.spec.id])
+    explainer = Explainer(bundle, top_k=args.top)
+    explanation = explainer.explain(table)
+    threshold = bundle.manifest.decision.threshold
+    names = bundle.spec.feature_names
+    if kind == "jsonl":
+        records = explanation_records(explanation, threshold, names, args.all_contributions)
+        with atomic_file(args.out) as temporary, open(temporary, "w", encoding="utf-8") as out:
+            for record in records:
+                out.write(json.dumps(record, ensure_ascii=False) + "\n")
+    else:
+        frame = explanation_frame(
+            explanation, threshold, names, explainer.top_k, args.all_contributions
+        )
+        write_table(escape_frame(frame) if kind == "csv" else frame, args.out)
+    _print_explain_summary(explanation, args.out)
+    return 0
+
+
+def _print_explain_summary(explanation, out: Path) -> None:  # type: ignore[no-untyped-def]
+    rows = len(explanation.ids)
+    flagged = int(explanation.decision.sum())
+    warned = sum(1 for w in explanation.warnings if w)
+    print(f"explained: {rows} events, {flagged} at or above the threshold -> {out}")
+    if warned:
+        print(f"warnings: {warned} events (see the warnings column)")
+    leading = Counter(
+        reasons[0].code
+        for reasons, flagged_row in zip(explanation.reasons, explanation.decision, strict=True)
+        if reasons and flagged_row
+    )
+    if leading:
+        print("leading reason code of the flagged events:")
+        for code, count in leading.most_common(10):
+            print(f"  {code:<28} {count:>7}  {100 * count / flagged:5.1f} %")
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = _parser().parse_args(argv)
+    try:
+        return int(args.run(args))
+    except CauselineError as exc:
+        print(f"causeline {args.command}: error: {exc}", file=sys.stderr)
+        return EXIT_USER_ERROR
+    except KeyboardInterrupt:
+        print(f"causeline {args.command}: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # the last line of defence: no traceback for users
+        if os.environ.get("CAUSELINE_DEBUG") == "1":
+            traceback.print_exc()
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+        print(
+            f"causeline {args.command}: internal error: {type(exc).__name__}: {first} "
+            "(set CAUSELINE_DEBUG=1 for details)",
+            file=sys.stderr,
+        )
+        return EXIT_INTERNAL_ERROR
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,21 @@
+"""Errors a user can act on.
+
+Each carries a one-line message that names what is wrong (a key, a column, a file); the command
+line prints it without a traceback and the HTTP layer turns it into problem details.
+"""
+
+
+class CauselineError(Exception):
+    """Base class for errors shown to users as one line."""
+
+
+class ConfigError(CauselineError):
+    """A data-set config (or the spec inside a bundle) is invalid."""
+
+
+class DataError(CauselineError):
+    """An input table does not fit the config or bundle it is used with."""
+
+
+class BundleError(CauselineError):
+    """A bundle is missing, incomplete, tampered with or of an unknown schema."""

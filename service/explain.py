@@ -1,0 +1,121 @@
+"""Exact contributions and the explanation of a table of events.
+
+The engine is LightGBM's own TreeSHAP (``Booster.predict(pred_contrib=True)``): exact
+path-dependent SHAP values (Lundberg, Erion & Lee 2018) in the model's raw output, log-odds of an
+event. Calibration comes after the trees, so contributions explain the raw score; the calibrated
+probability is a monotone function of it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import lightgbm as lgb
+import numpy as np
+import pandas as pd
+
+from service.bundle import Bundle
+from service.features import FeatureMatrix, RowProblem
+from service.model import calibrate
+from service.reasons import Reason, ReasonCatalogue
+
+ENGINE = "lightgbm-treeshap"
+
+
+@dataclass(frozen=True)
+class Contributions:
+    """SHAP values per event and feature, and the base value they add up from."""
+
+    values: np.ndarray
+    base_value: float
+
+    @property
+    def raw(self) -> np.ndarray:
+        """Base value plus the sum of contributions: the model's raw score (local accuracy)."""
+        return self.base_value + self.values.sum(axis=1)
+
+
+def contributions(booster: lgb.Booster, features: np.ndarray) -> Contributions:
+    """Exact TreeSHAP values for each row of ``features``."""
+    rows = features if features.shape[0] else np.full((1, features.shape[1]), np.nan)
+    out = np.asarray(booster.predict(rows, pred_contrib=True), dtype=np.float64)
+    # The last column is the expected value, the same on every row.
+    base = float(out[0, -1])
+    return Contributions(values=out[: features.shape[0], :-1], base_value=base)
+
+
+@dataclass(frozen=True)
+class Explanation:
+    """Scores and reasons for a table of events, row for row."""
+
+    ids: list[str]
+    features: FeatureMatrix
+    contributions: Contributions
+    probability: np.ndarray
+    decision: np.ndarray
+    code_contributions: np.ndarray
+    reasons: list[list[Reason]]
+    warnings: list[list[str]]
+
+
+class Explainer:
+    """Scores events with a bundle and attaches ranked reason codes."""
+
+    def __init__(self, bundle: Bundle, top_k: int | None = None) -> None:
+        self.bundle = bundle
+        settings = bundle.manifest.explain
+        self.top_k = top_k or settings.top_k
+        self.min_contribution = settings.min_contribution
+        self.catalogue = ReasonCatalogue(bundle.spec, bundle.manifest.stats)
+
+    def explain(self, table: pd.DataFrame) -> Explanation:
+        """Explain every row; rows with problems are scored with those cells treated as missing."""
+        matrix = self.bundle.builder.transform(table)
+        contrib = contributions(self.bundle.booster, matrix.values)
+        probability = calibrate(self.bundle.manifest.calibration, contrib.raw)
+        codes = self.catalogue.aggregate(contrib.values, matrix.values)
+        ranked = self.catalogue.rank(codes, self.top_k, self.min_contribution)
+        reasons = [
+            [self.catalogue.reason(code, value, matrix.values[row]) for code, value in events]
+            for row, events in enumerate(ranked)
+        ]
+        return Explanation(
+            ids=_ids(table, self.bundle.spec.id),
+            features=matrix,
+            contributions=contrib,
+            probability=probability,
+            decision=probability >= self.bundle.manifest.decision.threshold,
+            code_contributions=codes,
+            reasons=reasons,
+            warnings=self._warnings(matrix),
+        )
+
+    def _warnings(self, matrix: FeatureMatrix) -> list[list[str]]:
+        """Per row: cell problems, and values outside the range seen in training."""
+        out: list[list[str]] = [[] for _ in range(matrix.values.shape[0])]
+        for problem in matrix.problems:
+            out[problem.row].append(_problem_text(problem))
+        stats = self.bundle.manifest.stats
+        for position, name in enumerate(matrix.names):
+            low, high = stats[name].minimum, stats[name].maximum
+            if stats[name].categories is not None or low is None or high is None:
+                continue
+            column = matrix.values[:, position]
+            with np.errstate(invalid="ignore"):
+                outside = np.flatnonzero((column < low) | (column > high))
+            for row in outside:
+                out[row].append(
+                    f"{name}={column[row]:.6g} is outside the training range "
+                    f"[{low:.6g}, {high:.6g}]"
+                )
+        return out
+
+
+def _problem_text(problem: RowProblem) -> str:
+    return f"{problem.column}: {problem.message}; scored as missing"
+
+
+def _ids(table: pd.DataFrame, id_column: str) -> list[str]:
+    if id_column in table.columns:
+        return [str(value) for value in table[id_column].astype("string").fillna("")]
+    return [str(position) for position in range(len(table))]

@@ -1,0 +1,138 @@
+"""From feature contributions to ranked reason codes with plain-language text.
+
+Each catalogue code covers a set of features; its contribution for an event is the sum of theirs,
+which is exact because SHAP values are additive. Codes sharing a feature set split it by the
+event's value of the first feature: a ``high`` code takes events above the training typical value,
+a ``low`` code those below. What no code takes (a value on the other side, a missing value) stays
+in an unassigned remainder, so base value + codes + remainder is still the raw score.
+
+Features that no code covers get an automatic code ``F_<FEATURE>`` so nothing goes unexplained.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from service.bundle import FeatureStats
+from service.spec import PLACEHOLDER, DatasetSpec, ReasonCode
+
+Value = float | str | None
+
+
+@dataclass(frozen=True)
+class Reason:
+    """One reason for one event."""
+
+    code: str
+    text: str
+    contribution: float
+    values: dict[str, Value]
+
+
+def automatic_code(feature: str) -> str:
+    return f"F_{feature.upper()}"
+
+
+class ReasonCatalogue:
+    """The bundle's codes, ready to aggregate contributions and render reasons."""
+
+    def __init__(self, spec: DatasetSpec, stats: Mapping[str, FeatureStats]) -> None:
+        self.feature_names = spec.feature_names
+        self.stats = dict(stats)
+        covered = {name for code in spec.reason_codes for name in code.features}
+        self.codes: list[ReasonCode] = list(spec.reason_codes) + [
+            ReasonCode(
+                code=automatic_code(name),
+                features=(name,),
+                direction="any",
+                text=f"{name} is {{{name}}} (typical {{{name}:typical}})",
+            )
+            for name in self.feature_names
+            if name not in covered
+        ]
+        self.index = {code.code: position for position, code in enumerate(self.codes)}
+        position = {name: i for i, name in enumerate(self.feature_names)}
+        self._columns = [[position[name] for name in code.features] for code in self.codes]
+        self._categories = {
+            name: s.categories for name, s in self.stats.items() if s.categories is not None
+        }
+
+    @property
+    def code_ids(self) -> list[str]:
+        return [code.code for code in self.codes]
+
+    def aggregate(self, contributions: np.ndarray, features: np.ndarray) -> np.ndarray:
+        """Per-event contribution of each code, shape (events, codes), in log-odds."""
+        out = np.zeros((contributions.shape[0], len(self.codes)), dtype=np.float64)
+        for position, code in enumerate(self.codes):
+            columns = self._columns[position]
+            summed = contributions[:, columns].sum(axis=1)
+            if code.direction == "any":
+                out[:, position] = summed
+                continue
+            primary = features[:, columns[0]]
+            typical = self.stats[code.features[0]].typical
+            if not isinstance(typical, float | int):
+                continue
+            with np.errstate(invalid="ignore"):
+                side = primary > typical if code.direction == "high" else primary < typical
+            out[:, position] = np.where(side, summed, 0.0)
+        return out
+
+    def rank(
+        self, code_contributions: np.ndarray, top_k: int, min_contribution: float
+    ) -> list[list[tuple[int, float]]]:
+        """Up to ``top_k`` codes per event that raise the risk by more than ``min_contribution``."""
+        k = min(top_k, code_contributions.shape[1])
+        # A stable sort keeps catalogue order among ties, so rankings are reproducible.
+        order = np.argsort(-code_contributions, axis=1, kind="stable")[:, :k]
+        values = np.take_along_axis(code_contributions, order, axis=1)
+        keep = values > min_contribution
+        return [
+            [(int(c), float(v)) for c, v, ok in zip(row_o, row_v, row_k, strict=True) if ok]
+            for row_o, row_v, row_k in zip(order, values, keep, strict=True)
+        ]
+
+    def decode(self, name: str, value: float) -> Value:
+        """A feature value as a person reads it: category names, None for missing."""
+        if value is None or (isinstance(value, float) and math.isnan(value)):
+            return None
+        categories = self._categories.get(name)
+        if categories is not None:
+            return categories[int(value)]
+        return float(value)
+
+    def reason(self, position: int, contribution: float, row: Sequence[float]) -> Reason:
+        """Render code ``position`` for one event's feature values ``row``."""
+        code = self.codes[position]
+        names = list(dict.fromkeys([*code.features, *code.placeholders()]))
+        values = {
+            name: self.decode(name, row[self.feature_names.index(name)]) for name in names
+        }
+        text = render(code.text, values, self.stats)
+        return Reason(code=code.code, text=text, contribution=contribution, values=values)
+
+
+def render(template: str, values: Mapping[str, Value], stats: Mapping[str, FeatureStats]) -> str:
+    """Fill ``{feature}`` and ``{feature:typical}``; never Python's format (no attribute access)."""
+    def fill(match: re.Match[str]) -> str:
+        name, typical = match.group(1), match.group(2)
+        value = stats[name].typical if typical else values.get(name)
+        return format_value(value)
+
+    return PLACEHOLDER.sub(fill, template)
+
+
+def format_value(value: Value) -> str:
+    if value is None:
+        return "missing"
+    if isinstance(value, str):
+        return value
+    if float(value).is_integer() and abs(value) < 1e15:
+        return str(int(value))
+    return f"{value:.4g}" if abs(value) < 1e5 else f"{value:.0f}"

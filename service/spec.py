@@ -1,0 +1,230 @@
+"""What a data set means: its columns, features and reason-code catalogue.
+
+The same models describe a data-set config (YAML, read by ``training``) and the spec stored in a
+bundle's manifest (JSON, read here), so the two cannot drift apart. Validation errors name the
+exact key, e.g. ``reason_codes[2].fix.targets: 'door_openings_per_h' is observable``.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Mapping
+from typing import Any, Literal, TypeVar
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from service.errors import ConfigError
+from service.expressions import parse_expression
+
+NAME_PATTERN = r"^[A-Za-z_][A-Za-z0-9_]*$"
+CODE_PATTERN = r"^[A-Z][A-Z0-9_]*$"
+PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)(?::(typical))?\}")
+
+Role = Literal["controllable", "observable"]
+Kind = Literal["numeric", "categorical"]
+Direction = Literal["high", "low", "any"]
+
+
+class Strict(BaseModel):
+    """Base for spec models: unknown keys are errors, instances are immutable."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class FeatureSpec(Strict):
+    """One model input: a raw column, or an arithmetic expression over other columns."""
+
+    name: str = Field(pattern=NAME_PATTERN)
+    role: Role
+    kind: Kind = "numeric"
+    unit: str = ""
+    description: str = ""
+    column: str | None = None
+    expr: str | None = None
+    categories: tuple[str, ...] | None = None
+    allow_missing: bool = True
+
+    @model_validator(mode="after")
+    def _check(self) -> FeatureSpec:
+        if self.expr is not None:
+            if self.column is not None:
+                raise ValueError("give either column or expr, not both")
+            if self.kind != "numeric":
+                raise ValueError("a derived feature (expr) must be numeric")
+            try:
+                parse_expression(self.expr)
+            except ConfigError as exc:
+                raise ValueError(str(exc)) from None
+        if self.categories is not None and self.kind != "categorical":
+            raise ValueError("categories are only for kind: categorical")
+        return self
+
+    @property
+    def derived(self) -> bool:
+        return self.expr is not None
+
+    @property
+    def source_column(self) -> str:
+        """The raw column a non-derived feature reads."""
+        return self.column or self.name
+
+
+class Fix(Strict):
+    """The kind of fix a code suggests, and the settings it brings for controllable drivers."""
+
+    kind: str = Field(min_length=1)
+    action: str = Field(min_length=1)
+    targets: dict[str, float | str] = Field(default_factory=dict)
+
+
+class ReasonCode(Strict):
+    """A stable code covering one or more features; their contributions are summed."""
+
+    code: str = Field(pattern=CODE_PATTERN, max_length=64)
+    features: tuple[str, ...] = Field(min_length=1)
+    direction: Direction = "high"
+    text: str = Field(min_length=1)
+    fix: Fix | None = None
+
+    @field_validator("text")
+    @classmethod
+    def _placeholders(cls, text: str) -> str:
+        stripped = PLACEHOLDER.sub("", text)
+        if "{" in stripped or "}" in stripped:
+            raise ValueError("placeholders look like {feature} or {feature:typical}")
+        return text
+
+    def placeholders(self) -> list[str]:
+        return [match.group(1) for match in PLACEHOLDER.finditer(self.text)]
+
+
+class ExplainSettings(Strict):
+    """How contributions become reasons."""
+
+    # Four reasons: the useful maximum that US Regulation B's official commentary gives for
+    # adverse-action notices (12 CFR part 1002, Supplement I, comment 9(b)(2)-1).
+    top_k: int = Field(default=4, ge=1, le=20)
+    # In log-odds: smaller contributions are noise, not reasons.
+    min_contribution: float = Field(default=0.05, ge=0.0)
+
+
+class DatasetSpec(Strict):
+    """Columns of an event table and what each feature means."""
+
+    name: str = Field(pattern=r"^[A-Za-z0-9_.-]+$")
+    target: str
+    id: str
+    time: str | None = None
+    entity: str | None = None
+    features: tuple[FeatureSpec, ...] = Field(min_length=1)
+    reason_codes: tuple[ReasonCode, ...] = ()
+
+    @model_validator(mode="after")
+    def _cross_check(self) -> DatasetSpec:
+        names = [feature.name for feature in self.features]
+        seen: set[str] = set()
+        for index, name in enumerate(names):
+            if name in seen:
+                raise ValueError(f"features[{index}].name: {name!r} is used twice")
+            seen.add(name)
+        raw = {f.name for f in self.features if not f.derived}
+        for index, feature in enumerate(self.features):
+            if feature.derived:
+                for used in sorted(parse_expression(feature.expr or "").names):
+                    if used in seen and used not in raw:
+                        raise ValueError(
+                            f"features[{index}].expr: {used!r} is derived; "
+                            "expressions read raw columns and raw features only"
+                        )
+        self._check_codes(set(names))
+        return self
+
+    def _check_codes(self, names: set[str]) -> None:
+        by_feature_set: dict[tuple[str, ...], list[ReasonCode]] = {}
+        owner: dict[str, tuple[str, ...]] = {}
+        codes: set[str] = set()
+        features = {f.name: f for f in self.features}
+        for index, code in enumerate(self.reason_codes):
+            where = f"reason_codes[{index}]"
+            if code.code in codes:
+                raise ValueError(f"{where}.code: {code.code!r} is used twice")
+            codes.add(code.code)
+            for name in code.features:
+                if name not in names:
+                    raise ValueError(f"{where}.features: {name!r} is not a feature")
+                if name in owner and owner[name] != code.features:
+                    raise ValueError(
+                        f"{where}.features: {name!r} is already covered by a code with "
+                        f"features {list(owner[name])}; codes sharing a feature must cover "
+                        "the same features"
+                    )
+                owner[name] = code.features
+            for name in code.placeholders():
+                if name not in names:
+                    raise ValueError(f"{where}.text: {{{name}}} is not a feature")
+            primary = features[code.features[0]]
+            if code.direction != "any" and primary.kind == "categorical":
+                raise ValueError(f"{where}.direction: a categorical feature takes 'any'")
+            group = by_feature_set.setdefault(code.features, [])
+            directions = [c.direction for c in group] + [code.direction]
+            repeated = len(set(directions)) < len(directions)
+            if ("any" in directions and len(directions) > 1) or repeated:
+                raise ValueError(
+                    f"{where}.direction: codes over the same features need distinct "
+                    "directions 'high' and 'low' ('any' stands alone)"
+                )
+            group.append(code)
+            if code.fix is not None:
+                for target, value in code.fix.targets.items():
+                    if target not in features:
+                        raise ValueError(f"{where}.fix.targets: {target!r} is not a feature")
+                    spec = features[target]
+                    if spec.role != "controllable":
+                        raise ValueError(
+                            f"{where}.fix.targets: {target!r} is observable; only "
+                            "controllable features take a target setting"
+                        )
+                    if spec.kind == "numeric" and not isinstance(value, int | float):
+                        raise ValueError(f"{where}.fix.targets: {target!r} needs a number")
+                    if spec.kind == "categorical" and not isinstance(value, str):
+                        raise ValueError(f"{where}.fix.targets: {target!r} needs a category")
+
+    @property
+    def feature_names(self) -> list[str]:
+        return [feature.name for feature in self.features]
+
+    def feature(self, name: str) -> FeatureSpec:
+        for feature in self.features:
+            if feature.name == name:
+                return feature
+        raise KeyError(name)
+
+
+M = TypeVar("M", bound=BaseModel)
+
+
+def validate_model(model: type[M], data: Any, source: str) -> M:
+    """Validate ``data`` as ``model`` or raise a one-line :class:`ConfigError` naming the key."""
+    if not isinstance(data, Mapping):
+        raise ConfigError(f"{source}: expected a mapping at the top level")
+    try:
+        return model.model_validate(data)
+    except ValidationError as exc:
+        first = exc.errors()[0]
+        location = _location(first.get("loc", ()))
+        message = first.get("msg", "invalid").removeprefix("Value error, ")
+        extra = f" (and {exc.error_count() - 1} more)" if exc.error_count() > 1 else ""
+        if first.get("type") == "extra_forbidden":
+            message = "unknown key"
+        where = f" at {location}" if location else ""
+        raise ConfigError(f"{source}{where}: {message}{extra}") from None
+
+
+def _location(parts: tuple[Any, ...]) -> str:
+    text = ""
+    for part in parts:
+        if isinstance(part, int):
+            text += f"[{part}]"
+        else:
+            text += f".{part}" if text else str(part)
+    return text

@@ -1,0 +1,67 @@
+"""Reading and writing tables by file suffix: CSV, JSON lines or Parquet."""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from pathlib import Path
+
+import pandas as pd
+
+from service.errors import DataError
+from service.storage import atomic_file
+
+_CSV = (".csv", ".csv.gz", ".txt")
+_JSONL = (".jsonl", ".ndjson", ".jsonl.gz")
+_PARQUET = (".parquet", ".pq")
+SUFFIXES = _CSV + _JSONL + _PARQUET
+
+
+def table_format(path: Path) -> str:
+    """``csv``, ``jsonl`` or ``parquet`` from the file name; a clear error otherwise."""
+    name = Path(path).name.lower()
+    for kind, suffixes in (("csv", _CSV), ("jsonl", _JSONL), ("parquet", _PARQUET)):
+        if name.endswith(suffixes):
+            return kind
+    raise DataError(f"{path}: unknown table format; use one of {', '.join(SUFFIXES)}")
+
+
+def read_table(path: Path, text_columns: Iterable[str] = ()) -> pd.DataFrame:
+    """Read a whole table; ``text_columns`` (ids, say) are kept as text, never as numbers."""
+    path = Path(path)
+    kind = table_format(path)
+    if not path.is_file():
+        raise DataError(f"{path}: no such file")
+    text = {column: "string" for column in text_columns}
+    try:
+        if kind == "csv":
+            frame = pd.read_csv(path, dtype=text or None, encoding="utf-8")
+        elif kind == "jsonl":
+            frame = pd.read_json(path, lines=True, dtype=text or None)
+        else:
+            frame = pd.read_parquet(path)
+    except UnicodeDecodeError as exc:
+        raise DataError(f"{path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
+    except (ValueError, OSError, pd.errors.ParserError) as exc:
+        first_line = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise DataError(f"{path}: cannot be read as {kind}: {first_line}") from None
+    for column in text:
+        if column in frame.columns:
+            frame[column] = frame[column].astype("string")
+    return frame
+
+
+def write_table(frame: pd.DataFrame, path: Path) -> None:
+    """Write atomically in the format the suffix names."""
+    path = Path(path)
+    kind = table_format(path)
+    # The temporary name hides the suffix, so compression is named explicitly.
+    compression = "gzip" if path.name.lower().endswith(".gz") else None
+    with atomic_file(path) as temporary:
+        if kind == "csv":
+            frame.to_csv(temporary, index=False, encoding="utf-8", compression=compression)
+        elif kind == "jsonl":
+            frame.to_json(
+                temporary, orient="records", lines=True, force_ascii=False, compression=compression
+            )
+        else:
+            frame.to_parquet(temporary, index=False)

@@ -1,0 +1,28 @@
+"""Shared fixtures: bundles trained once per test session on the committed data sets."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from service.bundle import Bundle, load_bundle
+from training.pipeline import train
+
+ROOT = Path(__file__).resolve().parent.parent
+FIXTURES = ROOT / "fixtures"
+AI4I_CSV = FIXTURES / "ai4i2020" / "ai4i2020.csv"
+AI4I_CONFIG = FIXTURES / "ai4i2020" / "config.yaml"
+
+
+@pytest.fixture(scope="session")
+def ai4i_table() -> pd.DataFrame:
+    return pd.read_csv(AI4I_CSV)
+
+
+@pytest.fixture(scope="session")
+def ai4i_bundle(tmp_path_factory: pytest.TempPathFactory) -> Bundle:
+    out = tmp_path_factory.mktemp("ai4i") / "bundle"
+    train(AI4I_CONFIG, AI4I_CSV, out)
+    return load_bundle(out)

@@ -1,0 +1,1 @@
+"""Turning a table of historical events into a verified bundle."""

@@ -1,0 +1,151 @@
+"""``train``: from an event table and its config to a verified bundle.
+
+table -> checks -> features -> split -> trees -> calibration -> threshold -> metrics -> bundle.
+"""
+
+from __future__ import annotations
+
+import json
+import platform
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from importlib import metadata
+from pathlib import Path
+
+import lightgbm as lgb
+import numpy as np
+import pandas as pd
+
+from service.bundle import (
+    CARD,
+    CHECKSUMS,
+    MANIFEST,
+    MODEL,
+    SCHEMA_VERSION,
+    ExplainerInfo,
+    Manifest,
+    checksum_text,
+    load_bundle,
+    sha256_file,
+)
+from service.errors import DataError
+from service.explain import ENGINE, contributions
+from service.features import FeatureBuilder
+from service.model import calibrate
+from service.storage import atomic_directory
+from service.tables import read_table
+from training.card import model_card
+from training.checks import (
+    check_columns,
+    check_events,
+    check_features,
+    feature_stats,
+    labels,
+    learn_categories,
+    parse_times,
+)
+from training.config import TrainConfig, load_config
+from training.evaluate import held_out_metrics
+from training.fit import choose_threshold, fit_calibration, fit_trees
+from training.split import split_rows
+
+LIBRARIES = ("causeline", "lightgbm", "numpy", "pandas", "scikit-learn", "shap")
+
+
+@dataclass(frozen=True)
+class TrainResult:
+    path: Path
+    manifest: Manifest
+
+
+def train(config_path: Path, data_path: Path, out: Path) -> TrainResult:
+    """Train on ``data_path`` as ``config_path`` describes and write the bundle to ``out``."""
+    config = load_config(config_path)
+    table = read_table(data_path, text_columns=[config.id])
+    manifest, model_text = fit_bundle(config, table, fingerprint=sha256_file(Path(data_path)))
+    write_bundle(out, manifest, model_text)
+    # Load what was written, so a bundle that would not load is never reported as trained.
+    bundle = load_bundle(out)
+    return TrainResult(path=Path(out), manifest=bundle.manifest)
+
+
+def fit_bundle(config: TrainConfig, table: pd.DataFrame, fingerprint: str) -> tuple[Manifest, str]:
+    """Everything ``train`` does short of writing files: the manifest and the text model."""
+    builder = FeatureBuilder(config.features, learn_categories(table, config))
+    check_columns(table, config, builder)
+    y = labels(table, config.target)
+    check_events(y, config.training.min_events)
+    matrix = builder.transform(table)
+    check_features(matrix, config)
+    times = parse_times(table, config.time) if config.time else None
+    entities = table[config.entity] if config.entity else None
+    split = split_rows(config.training.split, y, times, entities, config.training.seed)
+    for part, rows in (("the fit part", split.fit), ("the validation part", split.valid)):
+        check_events(y[rows], max(5, config.training.min_events // 5), part)
+    x = matrix.values
+    categorical = [i for i, f in enumerate(config.features) if f.kind == "categorical"]
+    trees = fit_trees(
+        x[split.fit], y[split.fit], x[split.valid], y[split.valid],
+        builder.names, categorical, config.training,
+    )
+    raw_valid = _raw(trees.booster, x[split.valid])
+    calibration = fit_calibration(config.training.calibration, raw_valid, y[split.valid])
+    p_valid = calibrate(calibration, raw_valid)
+    decision = choose_threshold(config.training.threshold, p_valid, y[split.valid])
+    p_test = calibrate(calibration, _raw(trees.booster, x[split.test]))
+    created = datetime.now(UTC)
+    base_value = contributions(trees.booster, x[:1]).base_value
+    manifest = Manifest(
+        schema_version=SCHEMA_VERSION,
+        name=config.name,
+        version=f"{created:%Y%m%d.%H%M%S}-{fingerprint[:8]}",
+        created=created.isoformat(timespec="seconds"),
+        dataset=config.dataset_spec(),
+        # Ranges and typical values describe all the data the model was built from: with a
+        # time split, the fit part alone would call every later month 'out of range'.
+        stats=feature_stats(matrix, builder.categories),
+        explain=config.explain,
+        calibration=calibration,
+        decision=decision,
+        explainer=ExplainerInfo(method=ENGINE, base_value=base_value),
+        metrics=held_out_metrics(y[split.test], p_test, decision.threshold),
+        training={
+            "rows": int(y.size),
+            "events": int(y.sum()),
+            "split": split.summary(),
+            "best_iteration": trees.best_iteration,
+            "parameters": {k: v for k, v in trees.parameters.items() if k != "verbosity"},
+        },
+        data_fingerprint=fingerprint,
+        libraries=_libraries(),
+    )
+    return manifest, trees.booster.model_to_string()
+
+
+def _raw(booster: lgb.Booster, x: np.ndarray) -> np.ndarray:
+    return np.asarray(booster.predict(x, raw_score=True), dtype=np.float64)
+
+
+def _libraries() -> dict[str, str]:
+    versions = {"python": platform.python_version()}
+    for name in LIBRARIES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "unknown"
+    return versions
+
+
+def write_bundle(out: Path, manifest: Manifest, model_text: str) -> None:
+    """Write all files into a staging folder, checksum them, then move it into place."""
+    out = Path(out)
+    if out.exists() and not (out / CHECKSUMS).is_file():
+        raise DataError(f"{out} exists and is not a bundle; refusing to replace it")
+    with atomic_directory(out) as staging:
+        (staging / MODEL).write_text(model_text, "utf-8")
+        (staging / MANIFEST).write_text(
+            json.dumps(manifest.model_dump(mode="json"), indent=2, allow_nan=False) + "\n",
+            "utf-8",
+        )
+        (staging / CARD).write_text(model_card(manifest), "utf-8")
+        (staging / CHECKSUMS).write_text(checksum_text(staging, [MANIFEST, MODEL, CARD]), "utf-8")
