@@ -20,6 +20,7 @@ from service.model import calibrate
 from service.reasons import Reason, ReasonCatalogue
 
 ENGINE = "lightgbm-treeshap"
+SMALL_BATCH = 64
 
 
 @dataclass(frozen=True)
@@ -38,7 +39,11 @@ class Contributions:
 def contributions(booster: lgb.Booster, features: np.ndarray) -> Contributions:
     """Exact TreeSHAP values for each row of ``features``."""
     rows = features if features.shape[0] else np.full((1, features.shape[1]), np.nan)
-    out = np.asarray(booster.predict(rows, pred_contrib=True), dtype=np.float64)
+    # Starting threads costs more than a few rows take to explain on one.
+    threads = 1 if rows.shape[0] <= SMALL_BATCH else 0
+    out = np.asarray(
+        booster.predict(rows, pred_contrib=True, num_threads=threads), dtype=np.float64
+    )
     # The last column is the expected value, the same on every row.
     base = float(out[0, -1])
     return Contributions(values=out[: features.shape[0], :-1], base_value=base)

@@ -63,6 +63,7 @@ class FeatureBuilder:
                 if feature.categories is None:
                     raise DataError(f"feature {feature.name!r}: no category list is known")
                 self.categories[feature.name] = list(feature.categories)
+        self._index = {name: pd.Index(values) for name, values in self.categories.items()}
 
     @property
     def names(self) -> list[str]:
@@ -120,14 +121,17 @@ class FeatureBuilder:
     def _encode(
         self, feature: FeatureSpec, column: pd.Series, problems: list[RowProblem]
     ) -> np.ndarray:
-        text = column.astype("string").str.strip()
-        codes = pd.Categorical(text, categories=self.categories[feature.name]).codes
-        unknown = np.flatnonzero(text.notna().to_numpy() & (codes < 0))
-        for row in unknown:
+        text = column.to_numpy(dtype=object, na_value=None)
+        present = np.array([value is not None for value in text], dtype=bool)
+        cleaned = [str(value).strip() if value is not None else "" for value in text]
+        codes = self._index[feature.name].get_indexer(cleaned).astype(np.float64)
+        codes[~present] = -1.0
+        for row in np.flatnonzero(present & (codes < 0)):
             problems.append(
-                RowProblem(int(row), feature.name, f"unknown category {text.iloc[row]!r}")
+                RowProblem(int(row), feature.name, f"unknown category {cleaned[row]!r}")
             )
-        return np.where(codes < 0, np.nan, codes.astype(np.float64))
+        codes[codes < 0] = np.nan
+        return codes
 
 
 class _ColumnView(Mapping[str, np.ndarray]):
@@ -161,8 +165,11 @@ def _numeric(feature: FeatureSpec, column: pd.Series, problems: list[RowProblem]
 
 
 def _to_float(name: str, column: pd.Series, problems: list[RowProblem]) -> np.ndarray:
-    if pd.api.types.is_bool_dtype(column.dtype):
-        return column.astype("float64").to_numpy(copy=True)
+    # Numbers need no parsing; this fast path keeps single-event scoring cheap.
+    if column.dtype.kind in "biuf":
+        return column.to_numpy(dtype=np.float64, copy=True)
+    if pd.api.types.is_bool_dtype(column.dtype) or pd.api.types.is_numeric_dtype(column.dtype):
+        return column.astype("float64").to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
     converted = pd.to_numeric(column, errors="coerce")
     values = converted.astype("float64").to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
     bad = np.flatnonzero(column.notna().to_numpy() & np.isnan(values))

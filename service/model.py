@@ -9,7 +9,10 @@ from service.bundle import Bundle, Calibration
 
 def raw_score(bundle: Bundle, features: np.ndarray) -> np.ndarray:
     """The boosted trees' output in log-odds, before calibration."""
-    return np.asarray(bundle.booster.predict(features, raw_score=True), dtype=np.float64)
+    threads = 1 if features.shape[0] <= 64 else 0
+    return np.asarray(
+        bundle.booster.predict(features, raw_score=True, num_threads=threads), dtype=np.float64
+    )
 
 
 def calibrate(calibration: Calibration, raw: np.ndarray) -> np.ndarray:

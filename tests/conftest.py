@@ -26,3 +26,23 @@ def ai4i_bundle(tmp_path_factory: pytest.TempPathFactory) -> Bundle:
     out = tmp_path_factory.mktemp("ai4i") / "bundle"
     train(AI4I_CONFIG, AI4I_CSV, out)
     return load_bundle(out)
+
+
+DEMO_CONFIG = FIXTURES / "demo" / "config.yaml"
+
+
+@pytest.fixture(scope="session")
+def demo_table() -> pd.DataFrame:
+    """The invented display-case fleet at its default size (320 cases x 365 days, seed 7)."""
+    from fixtures.demo.generate import generate
+
+    return generate()
+
+
+@pytest.fixture(scope="session")
+def demo_bundle(tmp_path_factory: pytest.TempPathFactory, demo_table: pd.DataFrame) -> Bundle:
+    folder = tmp_path_factory.mktemp("demo")
+    data = folder / "cases.parquet"
+    demo_table.to_parquet(data, index=False)
+    train(DEMO_CONFIG, data, folder / "bundle")
+    return load_bundle(folder / "bundle")
