@@ -45,6 +45,32 @@ def _parser() -> argparse.ArgumentParser:
         help="add every feature's contribution and the base value",
     )
     explain.set_defaults(run=_explain)
+
+    rootcause = commands.add_parser("rootcause", help="group events into root-cause groups")
+    rootcause.add_argument("--bundle", required=True, type=Path)
+    rootcause.add_argument(
+        "--events", required=True, type=Path,
+        help="CSV, JSONL or Parquet table, or a prediction-log folder (needs --predicted)",
+    )
+    rootcause.add_argument("--out", required=True, type=Path, help="output folder")
+    rootcause.add_argument(
+        "--predicted", action="store_true",
+        help="group rows scored at or above the threshold instead of labelled events",
+    )
+    rootcause.add_argument("--since", help="first time to include (inclusive)")
+    rootcause.add_argument("--until", help="time to stop before (exclusive)")
+    rootcause.add_argument("--previous", type=Path, help="previous run's folder, to keep ids")
+    rootcause.add_argument("--min-group-size", type=int, help="override the smallest group size")
+    rootcause.set_defaults(run=_rootcause)
+
+    serve = commands.add_parser(
+        "serve", help="serve scores with reason codes over HTTP (settings: CAUSELINE_* variables)"
+    )
+    serve.add_argument("--bundle", type=Path, help="a bundle folder or a folder of bundles")
+    serve.add_argument("--host", help="address to listen on (default 127.0.0.1)")
+    serve.add_argument("--port", type=int, help="port (default 8000)")
+    serve.add_argument("--workers", type=int, help="worker processes (default 1)")
+    serve.set_defaults(run=_serve)
     return parser
 
 
@@ -95,6 +121,39 @@ def _explain(args: argparse.Namespace) -> int:
         )
         write_table(escape_frame(frame) if kind == "csv" else frame, args.out)
     _print_explain_summary(explanation, args.out)
+    return 0
+
+
+def _rootcause(args: argparse.Namespace) -> int:
+    from service.bundle import load_bundle
+    from service.rootcause_run import RootCauseOptions, run_rootcause
+
+    options = RootCauseOptions(
+        predicted=args.predicted, since=args.since, until=args.until,
+        previous=args.previous, min_group_size=args.min_group_size,
+    )
+    result = run_rootcause(
+        load_bundle(args.bundle), args.events, args.out, options,
+        progress=lambda message: print(message, file=sys.stderr, flush=True),
+    )
+    counts = result.summary["counts"]
+    print(
+        f"grouped {counts['events']} events: {counts['groups']} groups, "
+        f"{counts['ungrouped']} ungrouped -> {args.out}"
+    )
+    for record in result.groups.to_dict("records"):
+        status = record["status"] if isinstance(record["status"], str) else ""
+        print(f"  {record['group_id']:<12} {status:<9} {record['events']:>7}  {record['label']}")
+    print("Groups and events avoidable are model estimates, not a diagnosis.")
+    return 0
+
+
+def _serve(args: argparse.Namespace) -> int:
+    from service.serve import run
+    from service.settings import Settings
+
+    flags = {"bundle": args.bundle, "host": args.host, "port": args.port, "workers": args.workers}
+    run(Settings.from_env().with_flags(flags))
     return 0
 
 

@@ -10,6 +10,17 @@ from collections.abc import Iterator
 from pathlib import Path
 
 
+def _umask() -> int:
+    current = os.umask(0)
+    os.umask(current)
+    return current
+
+
+def _publishable(path: Path, directory: bool) -> None:
+    """mkstemp/mkdtemp create owner-only entries; give them the modes a plain write would."""
+    os.chmod(path, (0o777 if directory else 0o666) & ~_umask())
+
+
 def fsync_directory(path: Path) -> None:
     """Make a rename inside ``path`` durable (a no-op where directories cannot be opened)."""
     with contextlib.suppress(OSError):
@@ -32,6 +43,7 @@ def atomic_file(path: Path, mode: str = "wb") -> Iterator[Path]:
         yield temporary
         with open(temporary, "rb+") as handle:
             os.fsync(handle.fileno())
+        _publishable(temporary, directory=False)
         os.replace(temporary, path)
         fsync_directory(path.parent)
     finally:
@@ -54,6 +66,7 @@ def atomic_directory(path: Path) -> Iterator[Path]:
             if item.is_file():
                 with open(item, "rb") as handle:
                     os.fsync(handle.fileno())
+        _publishable(staging, directory=True)
         retired: Path | None = None
         if path.exists():
             retired = Path(

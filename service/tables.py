@@ -5,6 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterable
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from service.errors import DataError
@@ -65,3 +66,20 @@ def write_table(frame: pd.DataFrame, path: Path) -> None:
             )
         else:
             frame.to_parquet(temporary, index=False)
+
+
+_TRUE = frozenset({"1", "1.0", "true", "yes"})
+_FALSE = frozenset({"0", "0.0", "false", "no"})
+
+
+def binary_column(column: pd.Series, name: str, role: str) -> np.ndarray:
+    """A 0/1, true/false or yes/no column as booleans; anything else stops, naming the value."""
+    if column.isna().any():
+        raise DataError(f"column {name!r} ({role}) has missing values")
+    text = column.astype("string").str.strip().str.lower()
+    positive = text.isin(_TRUE).to_numpy(dtype=bool)
+    bad = ~(positive | text.isin(_FALSE).to_numpy(dtype=bool))
+    if bad.any():
+        example = column.iloc[int(np.flatnonzero(bad)[0])]
+        raise DataError(f"column {name!r} ({role}) is not binary: found {example!r}")
+    return positive

@@ -8,10 +8,8 @@ import pandas as pd
 from service.bundle import FeatureStats
 from service.errors import DataError
 from service.features import FeatureBuilder, FeatureMatrix
+from service.tables import binary_column
 from training.config import TrainConfig
-
-_TRUE = {"1", "1.0", "true", "yes"}
-_FALSE = {"0", "0.0", "false", "no"}
 
 
 def check_columns(table: pd.DataFrame, config: TrainConfig, builder: FeatureBuilder) -> None:
@@ -29,17 +27,7 @@ def check_columns(table: pd.DataFrame, config: TrainConfig, builder: FeatureBuil
 
 def labels(table: pd.DataFrame, target: str) -> np.ndarray:
     """The target as 0/1; anything else (2, 'maybe', missing) stops with the offending value."""
-    column = table[target]
-    if column.isna().any():
-        raise DataError(f"column {target!r} (target) has missing values")
-    text = column.astype("string").str.strip().str.lower()
-    positive = text.isin(_TRUE).to_numpy()
-    negative = text.isin(_FALSE).to_numpy()
-    bad = ~(positive | negative)
-    if bad.any():
-        example = column.iloc[int(np.flatnonzero(bad)[0])]
-        raise DataError(f"column {target!r} (target) is not binary: found {example!r}")
-    return positive.astype(np.int8)
+    return binary_column(table[target], target, "target").astype(np.int8)
 
 
 def parse_times(table: pd.DataFrame, column: str) -> pd.Series:

@@ -1,0 +1,210 @@
+"""HTTP: single-event scoring with reason codes against a bare endpoint of the same framework.
+
+Starts two real servers on free loopback ports with the same uvicorn settings (worker count, no
+access log): ``causeline serve`` on the demo bundle, and a FastAPI app whose endpoint returns a
+constant JSON. Then sends each the same single-event requests from a small asyncio load generator
+(plain HTTP/1.1 keep-alive, ``--connections`` at a time, bounded by a request count and a time
+limit) and prints ``name: value`` lines: throughput, p50/p99 latency and the throughput ratio.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+if str(ROOT) not in sys.path:
+    sys.path.insert(0, str(ROOT))
+
+import argparse  # noqa: E402
+import asyncio  # noqa: E402
+import json  # noqa: E402
+import os  # noqa: E402
+import socket  # noqa: E402
+import subprocess  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+from dataclasses import dataclass, field  # noqa: E402
+from typing import Any  # noqa: E402
+
+from bench.common import demo_bundle, report  # noqa: E402
+
+
+def bare_app() -> Any:
+    """The baseline: the same framework answering a constant JSON, no work at all."""
+    from fastapi import FastAPI
+
+    app = FastAPI()
+
+    @app.post("/v1/score")
+    async def score() -> dict[str, bool]:
+        return {"ok": True}
+
+    @app.get("/v1/health/ready")
+    async def ready() -> dict[str, str]:
+        return {"status": "ready"}
+
+    return app
+
+
+@dataclass
+class Run:
+    """Latencies (seconds) and failures of one measured run."""
+
+    latencies: list[float] = field(default_factory=list)
+    errors: int = 0
+    seconds: float = 0.0
+
+    def percentile(self, share: float) -> float:
+        ordered = sorted(self.latencies)
+        if not ordered:
+            return float("nan")
+        return ordered[min(len(ordered) - 1, int(share * len(ordered)))]
+
+
+async def _read_response(reader: asyncio.StreamReader) -> tuple[int, bytes]:
+    head = await reader.readuntil(b"\r\n\r\n")
+    lines = head.decode("latin-1").split("\r\n")
+    status = int(lines[0].split()[1])
+    length = 0
+    for line in lines[1:]:
+        name, _, value = line.partition(":")
+        if name.strip().lower() == "content-length":
+            length = int(value.strip())
+    return status, await reader.readexactly(length)
+
+
+async def _load(
+    port: int, requests: list[bytes], count: int, seconds: float, connections: int
+) -> Run:
+    run = Run()
+    remaining = count
+    stop_at = time.perf_counter() + seconds
+
+    async def connection(offset: int) -> None:
+        nonlocal remaining
+        reader, writer = await asyncio.open_connection("127.0.0.1", port)
+        sent = offset
+        try:
+            while remaining > 0 and time.perf_counter() < stop_at:
+                remaining -= 1
+                started = time.perf_counter()
+                writer.write(requests[sent % len(requests)])
+                sent += 1
+                status, _ = await _read_response(reader)
+                run.latencies.append(time.perf_counter() - started)
+                run.errors += status != 200
+        finally:
+            writer.close()
+
+    started = time.perf_counter()
+    await asyncio.gather(*(connection(i) for i in range(connections)))
+    run.seconds = time.perf_counter() - started
+    return run
+
+
+def _request(body: dict[str, Any]) -> bytes:
+    data = json.dumps(body).encode()
+    head = (
+        "POST /v1/score HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\n"
+        f"Content-Length: {len(data)}\r\n\r\n"
+    )
+    return head.encode() + data
+
+
+def _free_port() -> int:
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return int(probe.getsockname()[1])
+
+
+def _wait_ready(port: int, process: subprocess.Popen[bytes], seconds: float = 120.0) -> None:
+    import httpx
+
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        if process.poll() is not None:
+            raise SystemExit(f"server on port {port} exited with {process.returncode}")
+        try:
+            if httpx.get(f"http://127.0.0.1:{port}/v1/health/ready").status_code == 200:
+                return
+        except httpx.TransportError:
+            pass
+        time.sleep(0.2)
+    raise SystemExit(f"server on port {port} did not become ready")
+
+
+def _events(bundle: Path, rows: int = 200) -> list[dict[str, Any]]:
+    import pandas as pd
+
+    from service.bundle import load_bundle
+
+    loaded = load_bundle(bundle)
+    columns = [*loaded.builder.required_columns, loaded.spec.id]
+    table = pd.read_parquet(bundle.parent / "cases.parquet") if (
+        bundle.parent / "cases.parquet").is_file() else None
+    if table is None:
+        from fixtures.demo.generate import generate
+
+        table = generate(cases=20, days=20)
+    return json.loads(table[columns].tail(rows).to_json(orient="records"))
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--bundle", type=Path, help="bundle to serve (default: train the demo)")
+    parser.add_argument("--workers", type=int, default=1)
+    parser.add_argument("--connections", type=int, default=8)
+    parser.add_argument("--requests", type=int, default=4000, help="per server, at most")
+    parser.add_argument("--seconds", type=float, default=20.0, help="per server, at most")
+    args = parser.parse_args(argv)
+
+    scratch = Path(tempfile.mkdtemp(prefix="causeline-http-bench-"))
+    bundle = args.bundle or demo_bundle(scratch / "demo")
+    requests = [_request({"events": [event]}) for event in _events(bundle)]
+    env = {key: value for key, value in os.environ.items()
+           if not key.startswith("CAUSELINE_")}
+    env.update({"CAUSELINE_ACCESS_LOG": "0", "CAUSELINE_LOG_LEVEL": "warning",
+                "CAUSELINE_PREDICTION_LOG": str(scratch / "predictions"),
+                "PYTHONPATH": str(ROOT)})
+    ports = {"bare": _free_port(), "score": _free_port()}
+    commands = {
+        "bare": [sys.executable, "-m", "uvicorn", "bench.serving:bare_app", "--factory",
+                 "--port", str(ports["bare"]), "--workers", str(args.workers),
+                 "--no-access-log", "--log-level", "warning", "--no-server-header"],
+        "score": [sys.executable, "-m", "causeline", "serve", "--bundle", str(bundle),
+                  "--port", str(ports["score"]), "--workers", str(args.workers)],
+    }
+    processes = {
+        name: subprocess.Popen(command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL)
+        for name, command in commands.items()
+    }
+    try:
+        runs = {}
+        for name, port in ports.items():
+            _wait_ready(port, processes[name])
+            asyncio.run(_load(port, requests, 300, 30.0, args.connections))  # warm-up
+            runs[name] = asyncio.run(
+                _load(port, requests, args.requests, args.seconds, args.connections)
+            )
+    finally:
+        for process in processes.values():
+            process.terminate()
+        for process in processes.values():
+            process.wait(30)
+    report("http_workers", str(args.workers))
+    report("http_connections", str(args.connections))
+    throughput = {}
+    for name, run in runs.items():
+        throughput[name] = len(run.latencies) / run.seconds
+        report(f"http_{name}_requests", str(len(run.latencies)))
+        report(f"http_{name}_errors", str(run.errors))
+        report(f"http_{name}_throughput_rps", throughput[name])
+        report(f"http_{name}_p50_ms", 1000 * run.percentile(0.50))
+        report(f"http_{name}_p99_ms", 1000 * run.percentile(0.99))
+    report("http_throughput_ratio", throughput["score"] / throughput["bare"])
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,146 @@
+"""Request and response bodies of the HTTP API (they also make the OpenAPI document)."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from pydantic import BaseModel, ConfigDict, Field
+
+Value = float | str | None
+
+
+class ScoreRequest(BaseModel):
+    """Events to score: raw fields as in the training table, one object per event."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    model: str | None = Field(
+        default=None, description="bundle name; omit to use the default model"
+    )
+    events: list[dict[str, Any]] = Field(
+        min_length=1,
+        description="each event maps field name to a number, a string (categories, id) or null",
+    )
+
+
+class ModelRef(BaseModel):
+    name: str
+    version: str
+
+
+class ReasonOut(BaseModel):
+    code: str
+    text: str
+    contribution: float = Field(description="the code's contribution in log-odds")
+    values: dict[str, Value] = Field(description="the event's values of the code's features")
+
+
+class EventResult(BaseModel):
+    id: str
+    probability: float = Field(description="calibrated probability of the event")
+    decision: bool = Field(description="probability at or above the threshold")
+    threshold: float
+    reasons: list[ReasonOut]
+    warnings: list[str] = Field(description="e.g. values outside the training range")
+    base_value: float | None = Field(
+        default=None, description="with ?contributions=all: the SHAP base value (log-odds)"
+    )
+    contributions: dict[str, float] | None = Field(
+        default=None, description="with ?contributions=all: every feature's SHAP value"
+    )
+
+
+class ScoreResponse(BaseModel):
+    model: ModelRef
+    results: list[EventResult]
+
+
+class ModelSummary(BaseModel):
+    name: str
+    version: str
+    created: str
+    default: bool
+
+
+class ModelList(BaseModel):
+    default: str | None
+    models: list[ModelSummary]
+
+
+class FeatureOut(BaseModel):
+    name: str
+    field: str | None = Field(description="the event field it reads; null for derived features")
+    expr: str | None = None
+    kind: str
+    role: str
+    unit: str
+    description: str
+    allow_missing: bool
+    categories: list[str] | None = None
+    training_minimum: float | None = None
+    training_maximum: float | None = None
+    typical: float | str | None = None
+
+
+class FixOut(BaseModel):
+    kind: str
+    action: str
+    targets: dict[str, float | str]
+
+
+class CodeOut(BaseModel):
+    code: str
+    features: list[str]
+    direction: str
+    text: str
+    fix: FixOut | None = None
+
+
+class FieldsOut(BaseModel):
+    required: list[str]
+    optional: list[str]
+
+
+class ModelDescription(BaseModel):
+    name: str
+    version: str
+    created: str
+    threshold: float
+    decision_rule: str
+    fields: FieldsOut
+    features: list[FeatureOut]
+    catalogue: list[CodeOut]
+    metrics: dict[str, Any]
+
+
+class Liveness(BaseModel):
+    status: str
+
+
+class LogStatus(BaseModel):
+    status: str = Field(description="ok, failing or off")
+    folder: str | None = None
+    error: str | None = None
+    written: int = 0
+    dropped: int = 0
+
+
+class ReloadOut(BaseModel):
+    ok: bool
+    attempted_at: str | None
+    error: str | None
+    failures: int
+
+
+class Readiness(BaseModel):
+    status: str = Field(description="ready or not ready")
+    models: list[ModelRef]
+    default: str | None
+    loaded_at: str | None
+    last_reload: ReloadOut
+    prediction_log: LogStatus
+
+
+class ReloadResult(BaseModel):
+    models: list[ModelRef]
+    previous: list[ModelRef]

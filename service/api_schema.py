@@ -1,0 +1,125 @@
+"""The fields an event may carry for one bundle, and the JSON-level checks made before scoring.
+
+Checks that need the bundle's categories or missing-value rules come from
+:class:`service.features.FeatureMatrix` problems after the features are built; both kinds end up
+as :class:`service.problems.FieldError` naming the event and the field.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from service.bundle import Bundle
+from service.features import RowProblem
+from service.problems import FieldError
+
+
+class EventSchema:
+    """Required and optional fields of an event, with the JSON type each takes."""
+
+    def __init__(self, bundle: Bundle, reject_unknown: bool = True) -> None:
+        spec = bundle.spec
+        self.id_field = spec.id
+        self.required = list(bundle.builder.required_columns)
+        categorical = {f.source_column for f in spec.features if f.kind == "categorical"}
+        self.text = {name for name in self.required if name in categorical}
+        self.optional = [name for name in (spec.id, spec.time, spec.entity) if name]
+        self.known = set(self.required) | set(self.optional)
+        self.reject_unknown = reject_unknown
+        # Feature problems name features; clients know fields (raw columns).
+        self._field_of = {
+            f.name: f.source_column for f in spec.features if not f.derived
+        }
+        self._derived = {f.name: f.expr for f in spec.features if f.derived}
+
+    def check(self, events: Sequence[Mapping[str, Any]]) -> list[FieldError]:
+        """Unknown and missing fields, wrong JSON types, NaN and Infinity tokens."""
+        errors: list[FieldError] = []
+        for index, event in enumerate(events):
+            if self.reject_unknown:
+                errors += [
+                    FieldError(event=index, field=str(name), message="unknown field")
+                    for name in event if name not in self.known
+                ]
+            for name in self.required:
+                if name not in event:
+                    message = "field is required (send null for an unknown value)"
+                    errors.append(FieldError(event=index, field=name, message=message))
+                    continue
+                message = self._type_error(name, event[name])
+                if message:
+                    errors.append(FieldError(event=index, field=name, message=message))
+            for name in self.optional:
+                value = event.get(name)
+                if value is not None and (
+                    isinstance(value, bool) or not isinstance(value, str | int)
+                ):
+                    errors.append(
+                        FieldError(event=index, field=name, message="expected a string")
+                    )
+        return errors
+
+    def _type_error(self, name: str, value: Any) -> str | None:
+        if value is None:
+            return None
+        if name in self.text:
+            if isinstance(value, str) or (isinstance(value, int) and not isinstance(value, bool)):
+                return None
+            return f"expected a string (a category), got {_json_type(value)}"
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            return f"expected a number, got {_json_type(value)}"
+        if isinstance(value, float) and math.isnan(value):
+            return "NaN is not a JSON number; send null for an unknown value"
+        if isinstance(value, float) and math.isinf(value):
+            return "Infinity is not a JSON number; send a finite number"
+        return None
+
+    def frame(self, events: Sequence[Mapping[str, Any]], ids: Sequence[str]) -> pd.DataFrame:
+        """The checked events as a table the feature builder reads (ids always present)."""
+        columns: dict[str, Any] = {}
+        for name in self.required:
+            values = [event[name] for event in events]
+            if name in self.text:
+                columns[name] = pd.array(
+                    [None if v is None else str(v) for v in values], dtype="string"
+                )
+            else:
+                columns[name] = np.array(
+                    [np.nan if v is None else v for v in values], dtype=np.float64
+                )
+        columns[self.id_field] = pd.array(list(ids), dtype="string")
+        return pd.DataFrame(columns)
+
+    def problem_errors(self, problems: Sequence[RowProblem], offset: int = 0) -> list[FieldError]:
+        """Feature-builder problems (unknown category, missing, ...) as field errors."""
+        out = []
+        for problem in problems:
+            field = self._field_of.get(problem.column, problem.column)
+            message = problem.message
+            if problem.column in self._derived:
+                message = f"{message} (derived feature: {self._derived[problem.column]})"
+            out.append(FieldError(event=problem.row - offset, field=field, message=message))
+        return out
+
+
+def event_id(event: Mapping[str, Any], id_field: str, position: int) -> str:
+    """The event's id as text, or its position in the request when it has none."""
+    value = event.get(id_field)
+    return str(position) if value is None else str(value)
+
+
+def _json_type(value: Any) -> str:
+    if isinstance(value, bool):
+        return "a boolean"
+    if isinstance(value, str):
+        return "a string"
+    if isinstance(value, list):
+        return "an array"
+    if isinstance(value, dict):
+        return "an object"
+    return "a number"

@@ -1,0 +1,116 @@
+"""Prometheus metrics for one app instance (its own registry, so tests can build many apps).
+
+With several uvicorn workers each process counts on its own; scrape one process per container
+(``--workers 1`` and more replicas) for totals that add up.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Awaitable, Callable, MutableMapping
+from typing import Any
+
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    CollectorRegistry,
+    Counter,
+    Gauge,
+    Histogram,
+    disable_created_metrics,
+    generate_latest,
+)
+
+# The *_created series double the output and no dashboard here uses them.
+disable_created_metrics()
+
+Scope = MutableMapping[str, Any]
+Message = MutableMapping[str, Any]
+ASGIApp = Callable[[Scope, Callable[[], Awaitable[Message]], Callable[[Message], Awaitable[None]]],
+                   Awaitable[None]]
+
+# Milliseconds matter for a scoring call; the buckets stretch to a few seconds for big batches.
+LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.0075, 0.01, 0.015, 0.02, 0.03, 0.05, 0.075, 0.1,
+                   0.25, 0.5, 1.0, 2.5, 5.0)
+
+
+class Metrics:
+    """Every metric the service exports."""
+
+    def __init__(self) -> None:
+        self.registry = CollectorRegistry(auto_describe=True)
+        r = self.registry
+        self.requests = Counter(
+            "causeline_http_requests", "HTTP requests by route and status", ["route", "status"],
+            registry=r,
+        )
+        self.latency = Histogram(
+            "causeline_http_request_seconds", "Time to answer an HTTP request", ["route"],
+            buckets=LATENCY_BUCKETS, registry=r,
+        )
+        self.events = Counter(
+            "causeline_events_scored", "Events scored", ["model"], registry=r
+        )
+        self.reasons = Counter(
+            "causeline_reason_codes_issued", "Reason codes returned, by code", ["model", "code"],
+            registry=r,
+        )
+        self.bundle_failures = Counter(
+            "causeline_bundle_load_failures", "Bundle loads or reloads refused", registry=r
+        )
+        self.reloads = Counter(
+            "causeline_bundle_reloads", "Successful bundle swaps", registry=r
+        )
+        self.model_info = Gauge(
+            "causeline_model_info", "Models served (value 1), by name and version",
+            ["model", "version"], registry=r,
+        )
+        self.log_errors = Counter(
+            "causeline_prediction_log_errors", "Prediction-log writes that failed", registry=r
+        )
+        self.log_dropped = Counter(
+            "causeline_prediction_log_dropped_records",
+            "Scored events not logged: queue full or write failed", ["reason"], registry=r,
+        )
+        self.log_written = Counter(
+            "causeline_prediction_log_records", "Scored events written to the log", registry=r
+        )
+        self.log_queue = Gauge(
+            "causeline_prediction_log_queue_records", "Records waiting to be written", registry=r
+        )
+
+    def set_models(self, models: dict[str, str]) -> None:
+        """Replace the served-models gauge with ``{name: version}``."""
+        self.model_info.clear()
+        for name, version in models.items():
+            self.model_info.labels(name, version).set(1)
+
+    def exposition(self) -> tuple[bytes, str]:
+        return generate_latest(self.registry), CONTENT_TYPE_LATEST
+
+
+class MetricsMiddleware:
+    """Counts requests by route template (never the raw path, which would explode labels)."""
+
+    def __init__(self, app: ASGIApp, metrics: Metrics) -> None:
+        self.app = app
+        self.metrics = metrics
+
+    async def __call__(self, scope: Scope, receive: Any, send: Any) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = time.perf_counter()
+        status = 500
+
+        async def send_wrapper(message: Message) -> None:
+            nonlocal status
+            if message["type"] == "http.response.start":
+                status = int(message["status"])
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_wrapper)
+        finally:
+            route = getattr(scope.get("route"), "path", None) or "unmatched"
+            self.metrics.requests.labels(route, str(status)).inc()
+            self.metrics.latency.labels(route).observe(time.perf_counter() - started)

@@ -1,0 +1,99 @@
+"""Which events the root-cause job groups: read the input, pick events, apply the time window.
+
+The input is a table (CSV, JSON lines, Parquet) or the service's prediction log. By default the
+job groups actual events (the bundle's label column says the event happened); with
+``predicted`` it groups rows whose calibrated probability reaches the bundle's threshold. A
+prediction log holds no labels, so it needs ``predicted``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from service.bundle import Bundle
+from service.errors import DataError
+from service.predlog import is_prediction_log, read_prediction_log
+from service.tables import binary_column, read_table
+
+LOG_TIME = "log_logged_at"
+LOG_ID = "log_id"
+# Training reads the same spellings (training/checks.py); service cannot import training.
+
+
+@dataclass(frozen=True)
+class EventInput:
+    """The whole input table and where its ids and times come from."""
+
+    table: pd.DataFrame
+    id_column: str
+    time_column: str | None
+    from_log: bool
+
+
+def read_events(bundle: Bundle, path: Path) -> EventInput:
+    """Read a table or a prediction-log folder; ids (and entities) are kept as text."""
+    path = Path(path)
+    spec = bundle.spec
+    if is_prediction_log(path):
+        table = read_prediction_log(path)
+        # Events sent without their own id are known by the id the log gave them.
+        id_column = spec.id if spec.id in table.columns else LOG_ID
+        for column in (id_column, spec.entity):
+            if column is not None and column in table.columns:
+                table[column] = table[column].astype("string")
+        return EventInput(table, id_column, LOG_TIME, from_log=True)
+    if path.is_dir():
+        raise DataError(f"{path}: a folder without prediction-log segments")
+    text = [c for c in (spec.id, spec.entity) if c is not None]
+    table = read_table(path, text_columns=text)
+    if spec.id not in table.columns:
+        raise DataError(f"{path}: no id column {spec.id!r}")
+    return EventInput(table, spec.id, spec.time, from_log=False)
+
+
+def event_labels(column: pd.Series, name: str) -> np.ndarray:
+    """The label column as booleans, read the way training reads it (0/1, true/false, yes/no)."""
+    return binary_column(column, name, "label")
+
+
+def parse_time(text: str | None, option: str) -> pd.Timestamp | None:
+    """A ``--since``/``--until`` value as a UTC time; dates without a zone are taken as UTC."""
+    if text is None:
+        return None
+    try:
+        stamp = pd.Timestamp(text)
+    except (ValueError, TypeError):
+        raise DataError(f"{option} {text!r} is not a date or time") from None
+    if pd.isna(stamp):
+        raise DataError(f"{option} {text!r} is not a date or time")
+    return stamp.tz_localize("UTC") if stamp.tzinfo is None else stamp.tz_convert("UTC")
+
+
+def event_times(events: EventInput) -> pd.Series:
+    """Each row's time (UTC), NaT where there is no time column or a value is not a time."""
+    column = events.time_column
+    if column is None or column not in events.table.columns:
+        return pd.Series(pd.NaT, index=events.table.index, dtype="datetime64[ns, UTC]")
+    return pd.to_datetime(events.table[column], errors="coerce", utc=True, format="mixed")
+
+
+def window_mask(
+    times: pd.Series, since: pd.Timestamp | None, until: pd.Timestamp | None, column: str | None
+) -> np.ndarray:
+    """Rows with ``since <= time < until`` (half-open, so back-to-back windows never overlap)."""
+    keep = np.ones(len(times), dtype=bool)
+    if since is None and until is None:
+        return keep
+    if column is None:
+        raise DataError("--since/--until need a time column, and the bundle's spec names none")
+    if times.isna().all():
+        raise DataError(f"--since/--until: column {column!r} holds no readable times")
+    if since is not None:
+        keep &= (times >= since).fillna(False).to_numpy(dtype=bool)
+    if until is not None:
+        keep &= (times < until).fillna(False).to_numpy(dtype=bool)
+    return keep

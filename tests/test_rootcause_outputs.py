@@ -1,0 +1,185 @@
+"""Root-cause outputs: spreadsheet-safe CSVs, atomic folders, ids tracked across runs, CLI."""
+
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from causeline.cli import main
+from fixtures.demo.generate import FAULTY_FIRMWARE
+from service import htmlreport
+from service.errors import DataError
+from service.explain import Explainer
+from service.predlog import PredictionLogWriter
+from service.rootcause_run import EVENT_GROUPS, GROUPS, RootCauseOptions, run_rootcause
+from service.tracking import PastGroup, PreviousRun, track
+from tests.rootcause_data import default_fleet, default_fleet_bundle, default_fleet_parquet
+
+MARCH = RootCauseOptions(since="2025-03-01", until="2025-04-01")
+
+
+@pytest.fixture(scope="module")
+def bundle():  # type: ignore[no-untyped-def]
+    return default_fleet_bundle()
+
+
+@pytest.fixture(scope="module")
+def fleet() -> pd.DataFrame:
+    return default_fleet()
+
+
+def _cells(path: Path, column: str) -> list[str]:
+    with open(path, encoding="utf-8", newline="") as handle:
+        return [row[column] for row in csv.DictReader(handle)]
+
+
+def _snapshot(folder: Path) -> dict[str, bytes]:
+    return {p.name: p.read_bytes() for p in sorted(folder.iterdir())}
+
+
+def test_formula_cells_are_escaped_in_both_csvs(bundle, fleet, tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # OWASP "CSV Injection": cells starting with = + - @ tab or CR get a leading single quote.
+    table = fleet.copy()
+    table["snapshot_id"] = '=HYPERLINK("http://example.invalid")-' + table["snapshot_id"]
+    table["case_id"] = "@Kühlregal-" + table["case_id"].str[-1]
+    data = tmp_path / "events.csv"
+    table.to_csv(data, index=False)
+    run_rootcause(bundle, data, tmp_path / "out", MARCH)
+    times = pd.to_datetime(table["snapshot_time"])
+    selected = (times >= "2025-03-01") & (times < "2025-04-01") & (table["went_warm_24h"] == 1)
+
+    ids = _cells(tmp_path / "out" / EVENT_GROUPS, "event_id")
+    entities = _cells(tmp_path / "out" / EVENT_GROUPS, "entity")
+    assert len(ids) == int(selected.sum())  # nothing dropped
+    assert all(cell.startswith("'=HYPERLINK(") for cell in ids)
+    assert all(cell.startswith("'@Kühlregal-") for cell in entities)
+    examples = _cells(tmp_path / "out" / GROUPS, "example_event_ids")
+    top = _cells(tmp_path / "out" / GROUPS, "top_entities")
+    grouped = [cell for cell in examples if cell]
+    assert grouped and all(cell.startswith("'=HYPERLINK(") for cell in grouped)
+    assert all(cell.startswith("'@Kühlregal-") for cell in top if cell)
+    html = (tmp_path / "out" / "report.html").read_text("utf-8")
+    assert "=HYPERLINK(&quot;http://example.invalid&quot;)" in html
+    assert '=HYPERLINK("http' not in html
+    # Self-contained: nothing to fetch, nothing to run.
+    assert "<script" not in html and 'src="' not in html and "<link" not in html
+
+
+def test_failed_run_leaves_previous_folder_byte_identical(  # type: ignore[no-untyped-def]
+    bundle, monkeypatch, tmp_path
+) -> None:
+    out = tmp_path / "out"
+    run_rootcause(bundle, default_fleet_parquet(), out, MARCH)
+    before = _snapshot(out)
+
+    def broken(*args, **kwargs):  # type: ignore[no-untyped-def]
+        raise RuntimeError("disk full")
+
+    monkeypatch.setattr(htmlreport, "write_report", broken)
+    april = RootCauseOptions(since="2025-04-01", until="2025-05-01")
+    with pytest.raises(RuntimeError):
+        run_rootcause(bundle, default_fleet_parquet(), out, april)
+    assert _snapshot(out) == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
+
+
+def test_refuses_to_replace_a_folder_that_is_not_an_output(bundle, tmp_path) -> None:  # type: ignore[no-untyped-def]
+    precious = tmp_path / "notes"
+    precious.mkdir()
+    (precious / "keep.txt").write_text("mine")
+    with pytest.raises(DataError, match="not a root-cause output folder"):
+        run_rootcause(bundle, default_fleet_parquet(), precious, MARCH)
+    assert (precious / "keep.txt").read_text() == "mine"
+
+
+def _leading(folder: Path) -> dict[str, str]:
+    """Leading code -> id of the largest group it leads (a small mixed group may share it)."""
+    groups = pd.read_csv(folder / GROUPS)
+    groups = groups[groups["code_1"].notna()].sort_values("events", ascending=False)
+    return dict(groups.groupby("code_1", sort=False)["group_id"].first())
+
+
+def test_ids_are_kept_across_runs_and_gone_groups_listed(bundle, fleet, tmp_path) -> None:  # type: ignore[no-untyped-def]
+    data = default_fleet_parquet()
+    first, second, third = tmp_path / "a", tmp_path / "b", tmp_path / "c"
+    run_rootcause(bundle, data, first)
+    run_rootcause(bundle, data, second, RootCauseOptions(previous=first))
+    a = pd.read_csv(first / EVENT_GROUPS)
+    b = pd.read_csv(second / EVENT_GROUPS)
+    assert (a["group_id"] == b["group_id"]).all()
+    statuses = pd.read_csv(second / GROUPS).dropna(subset=["status"])["status"]
+    assert len(statuses) >= 5 and set(statuses) == {"steady"}
+
+    # With one planted cause taken out of the fleet (every row on the demo generator's faulty
+    # firmware, FAULTY_FIRMWARE), its group is gone and the other causes keep their ids.
+    # Dropping only the events it caused would not do: other events on that firmware still
+    # (rightly) carry the firmware reason and keep a smaller group alive.
+    without = tmp_path / "without-firmware.parquet"
+    fleet[fleet["controller_firmware"] != FAULTY_FIRMWARE].to_parquet(without, index=False)
+    run_rootcause(bundle, without, third, RootCauseOptions(previous=second))
+    before, after = _leading(second), _leading(third)
+    gone = json.loads((third / "summary.json").read_text("utf-8"))["gone"]
+    assert before["FIRMWARE_FAULT"] in {g["group_id"] for g in gone}
+    assert "FIRMWARE_FAULT" not in after
+    for code in ("REFRIGERANT_LOW", "CONDENSER_FOULED", "DOOR_TRAFFIC_HIGH",
+                 "DEFROST_INTERVAL_LONG"):
+        assert after[code] == before[code], code
+
+
+def test_new_groups_never_reuse_an_old_number() -> None:
+    # Worked by hand: B matches G-002, A is gone, C is new and numbered past the last id (G-003).
+    previous = PreviousRun(
+        groups=[
+            PastGroup("G-001", 0.5, 50, "a", {"A": 1.0}),
+            PastGroup("G-002", 0.2, 20, "b", {"B": 0.9, "A": 0.1}),
+        ],
+        last_number=3,
+    )
+    tracked = track([{"B": 1.0}, {"C": 1.0}], [0.5, 0.1], previous)
+    assert tracked.ids == ["G-002", "G-004"]
+    assert tracked.status == ["growing", "new"]
+    assert [g.group_id for g in tracked.gone] == ["G-001"]
+
+
+def _log(bundle, fleet: pd.DataFrame, folder: Path) -> pd.DataFrame:  # type: ignore[no-untyped-def]
+    rows = fleet[fleet["snapshot_time"].str.startswith("2025-03")].head(1500)
+    writer = PredictionLogWriter(folder)
+    records = [
+        {"logged_at": f"{row['snapshot_time']}+00:00", "model": bundle.name,
+         "version": bundle.version, "id": row["snapshot_id"], "probability": 0.0,
+         "decision": False, "reasons": [], "event": dict(row)}
+        for row in rows.drop(columns=["went_warm_24h"]).to_dict("records")
+    ]
+    writer.append(records)
+    writer.close()
+    return rows
+
+
+def test_prediction_log_needs_predicted(bundle, fleet, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    rows = _log(bundle, fleet, tmp_path / "log")
+    args = ["rootcause", "--bundle", str(bundle.path), "--events", str(tmp_path / "log"),
+            "--out", str(tmp_path / "out")]
+    assert main(args) == 2
+    error = capsys.readouterr().err.strip().splitlines()
+    assert len(error) == 1 and "--predicted" in error[0]
+    assert not (tmp_path / "out").exists()
+
+    assert main([*args, "--predicted"]) == 0
+    events = pd.read_csv(tmp_path / "out" / EVENT_GROUPS)
+    assert len(events) == int(Explainer(bundle).explain(rows).decision.sum())
+    assert "step 1/" in capsys.readouterr().err
+
+
+def test_cli_errors_are_one_line(bundle, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    data = default_fleet_parquet()
+    base = ["rootcause", "--bundle", str(bundle.path), "--events", str(data),
+            "--out", str(tmp_path / "out")]
+    for extra, word in ((["--since", "last tuesday"], "--since"),
+                        (["--min-group-size", "1"], "--min-group-size")):
+        assert main([*base, *extra]) == 2
+        lines = capsys.readouterr().err.strip().splitlines()
+        assert len(lines) == 1 and word in lines[0], lines
