@@ -29,6 +29,15 @@ def ai4i_bundle(tmp_path_factory: pytest.TempPathFactory) -> Bundle:
 
 
 DEMO_CONFIG = FIXTURES / "demo" / "config.yaml"
+# The catalogue code for each planted cause, written out from the demo README's table of causes
+# rather than read from the code under test.
+DEMO_CAUSE_CODES = {
+    "refrigerant_leak": "REFRIGERANT_LOW",
+    "dirty_coil": "CONDENSER_FOULED",
+    "door_traffic": "DOOR_TRAFFIC_HIGH",
+    "long_defrost": "DEFROST_INTERVAL_LONG",
+    "firmware_fault": "FIRMWARE_FAULT",
+}
 
 
 @pytest.fixture(scope="session")
@@ -40,9 +49,13 @@ def demo_table() -> pd.DataFrame:
 
 
 @pytest.fixture(scope="session")
-def demo_bundle(tmp_path_factory: pytest.TempPathFactory, demo_table: pd.DataFrame) -> Bundle:
-    folder = tmp_path_factory.mktemp("demo")
-    data = folder / "cases.parquet"
-    demo_table.to_parquet(data, index=False)
-    train(DEMO_CONFIG, data, folder / "bundle")
-    return load_bundle(folder / "bundle")
+def demo_parquet(tmp_path_factory: pytest.TempPathFactory, demo_table: pd.DataFrame) -> Path:
+    path = tmp_path_factory.mktemp("demo") / "cases.parquet"
+    demo_table.to_parquet(path, index=False)
+    return path
+
+
+@pytest.fixture(scope="session")
+def demo_bundle(demo_parquet: Path) -> Bundle:
+    train(DEMO_CONFIG, demo_parquet, demo_parquet.parent / "bundle")
+    return load_bundle(demo_parquet.parent / "bundle")

@@ -9,14 +9,9 @@ from __future__ import annotations
 import numpy as np
 
 from service.explain import Explainer
+from tests.conftest import DEMO_CAUSE_CODES
 
-CAUSE_CODES = {
-    "refrigerant_leak": "REFRIGERANT_LOW",
-    "dirty_coil": "CONDENSER_FOULED",
-    "door_traffic": "DOOR_TRAFFIC_HIGH",
-    "long_defrost": "DEFROST_INTERVAL_LONG",
-    "firmware_fault": "FIRMWARE_FAULT",
-}
+CAUSE_CODES = DEMO_CAUSE_CODES
 
 
 def test_top_reason_is_the_planted_cause(demo_bundle, demo_table) -> None:

@@ -3,8 +3,6 @@ HDBSCAN, and the demo generator's planted causes and what-if ground truth."""
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import pandas as pd
 import pytest
 import yaml
@@ -15,44 +13,15 @@ from fixtures.demo.generate import expected_events
 from service.explain import Explainer
 from service.rootcause import UNGROUPED, GroupFinder, cause_mix
 from service.rootcause_run import RootCauseOptions, RootCauseResult, run_rootcause
-from tests.conftest import AI4I_CSV
-from tests.rootcause_data import (
-    DEMO_CONFIG,
-    default_fleet,
-    default_fleet_bundle,
-    default_fleet_parquet,
-)
+from tests.conftest import AI4I_CSV, DEMO_CAUSE_CODES, DEMO_CONFIG
 
 AI4I_MODES = ["TWF", "HDF", "PWF", "OSF"]
-# The catalogue code for each planted cause, written out from the demo README's table of
-# causes rather than read from the code under test.
-CAUSE_CODES = {
-    "refrigerant_leak": "REFRIGERANT_LOW",
-    "dirty_coil": "CONDENSER_FOULED",
-    "door_traffic": "DOOR_TRAFFIC_HIGH",
-    "long_defrost": "DEFROST_INTERVAL_LONG",
-    "firmware_fault": "FIRMWARE_FAULT",
-}
+CAUSE_CODES = DEMO_CAUSE_CODES
 
 
 @pytest.fixture(scope="module")
 def ai4i_run(ai4i_bundle, tmp_path_factory) -> RootCauseResult:  # type: ignore[no-untyped-def]
     return run_rootcause(ai4i_bundle, AI4I_CSV, tmp_path_factory.mktemp("rc-ai4i") / "out")
-
-
-@pytest.fixture(scope="module")
-def demo_table() -> pd.DataFrame:
-    return default_fleet()
-
-
-@pytest.fixture(scope="module")
-def demo_parquet() -> Path:
-    return default_fleet_parquet()
-
-
-@pytest.fixture(scope="module")
-def demo_bundle():  # type: ignore[no-untyped-def]
-    return default_fleet_bundle()
 
 
 @pytest.fixture(scope="module")

@@ -17,19 +17,18 @@ from service.explain import Explainer
 from service.predlog import PredictionLogWriter
 from service.rootcause_run import EVENT_GROUPS, GROUPS, RootCauseOptions, run_rootcause
 from service.tracking import PastGroup, PreviousRun, track
-from tests.rootcause_data import default_fleet, default_fleet_bundle, default_fleet_parquet
 
 MARCH = RootCauseOptions(since="2025-03-01", until="2025-04-01")
 
 
 @pytest.fixture(scope="module")
-def bundle():  # type: ignore[no-untyped-def]
-    return default_fleet_bundle()
+def bundle(demo_bundle):  # type: ignore[no-untyped-def]
+    return demo_bundle
 
 
 @pytest.fixture(scope="module")
-def fleet() -> pd.DataFrame:
-    return default_fleet()
+def fleet(demo_table) -> pd.DataFrame:  # type: ignore[no-untyped-def]
+    return demo_table
 
 
 def _cells(path: Path, column: str) -> list[str]:
@@ -70,10 +69,10 @@ def test_formula_cells_are_escaped_in_both_csvs(bundle, fleet, tmp_path) -> None
 
 
 def test_failed_run_leaves_previous_folder_byte_identical(  # type: ignore[no-untyped-def]
-    bundle, monkeypatch, tmp_path
+    demo_parquet, bundle, monkeypatch, tmp_path
 ) -> None:
     out = tmp_path / "out"
-    run_rootcause(bundle, default_fleet_parquet(), out, MARCH)
+    run_rootcause(bundle, demo_parquet, out, MARCH)
     before = _snapshot(out)
 
     def broken(*args, **kwargs):  # type: ignore[no-untyped-def]
@@ -82,17 +81,17 @@ def test_failed_run_leaves_previous_folder_byte_identical(  # type: ignore[no-un
     monkeypatch.setattr(htmlreport, "write_report", broken)
     april = RootCauseOptions(since="2025-04-01", until="2025-05-01")
     with pytest.raises(RuntimeError):
-        run_rootcause(bundle, default_fleet_parquet(), out, april)
+        run_rootcause(bundle, demo_parquet, out, april)
     assert _snapshot(out) == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
 
 
-def test_refuses_to_replace_a_folder_that_is_not_an_output(bundle, tmp_path) -> None:  # type: ignore[no-untyped-def]
+def test_refuses_to_replace_a_folder_that_is_not_an_output(demo_parquet, bundle, tmp_path) -> None:  # type: ignore[no-untyped-def]
     precious = tmp_path / "notes"
     precious.mkdir()
     (precious / "keep.txt").write_text("mine")
     with pytest.raises(DataError, match="not a root-cause output folder"):
-        run_rootcause(bundle, default_fleet_parquet(), precious, MARCH)
+        run_rootcause(bundle, demo_parquet, precious, MARCH)
     assert (precious / "keep.txt").read_text() == "mine"
 
 
@@ -103,8 +102,10 @@ def _leading(folder: Path) -> dict[str, str]:
     return dict(groups.groupby("code_1", sort=False)["group_id"].first())
 
 
-def test_ids_are_kept_across_runs_and_gone_groups_listed(bundle, fleet, tmp_path) -> None:  # type: ignore[no-untyped-def]
-    data = default_fleet_parquet()
+def test_ids_are_kept_across_runs_and_gone_groups_listed(  # type: ignore[no-untyped-def]
+    demo_parquet, bundle, fleet, tmp_path
+) -> None:
+    data = demo_parquet
     first, second, third = tmp_path / "a", tmp_path / "b", tmp_path / "c"
     run_rootcause(bundle, data, first)
     run_rootcause(bundle, data, second, RootCauseOptions(previous=first))
@@ -174,8 +175,8 @@ def test_prediction_log_needs_predicted(bundle, fleet, tmp_path, capsys) -> None
     assert "step 1/" in capsys.readouterr().err
 
 
-def test_cli_errors_are_one_line(bundle, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
-    data = default_fleet_parquet()
+def test_cli_errors_are_one_line(demo_parquet, bundle, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    data = demo_parquet
     base = ["rootcause", "--bundle", str(bundle.path), "--events", str(data),
             "--out", str(tmp_path / "out")]
     for extra, word in ((["--since", "last tuesday"], "--since"),
