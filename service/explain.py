@@ -12,10 +12,9 @@ from dataclasses import dataclass
 
 import lightgbm as lgb
 import numpy as np
-import pandas as pd
 
-from service.bundle import Bundle
-from service.features import FeatureMatrix, RowProblem
+from service.bundle import Bundle, FeatureStats
+from service.features import FeatureMatrix, RowProblem, Table, column_values, table_rows
 from service.model import calibrate
 from service.reasons import Reason, ReasonCatalogue
 
@@ -72,8 +71,12 @@ class Explainer:
         self.top_k = top_k or settings.top_k
         self.min_contribution = settings.min_contribution
         self.catalogue = ReasonCatalogue(bundle.spec, bundle.manifest.stats)
+        stats = [bundle.manifest.stats[name] for name in bundle.spec.feature_names]
+        # Categorical and range-less features get infinite bounds: never "outside".
+        self._low = np.array([_bound(s.minimum, s, -np.inf) for s in stats])
+        self._high = np.array([_bound(s.maximum, s, np.inf) for s in stats])
 
-    def explain(self, table: pd.DataFrame) -> Explanation:
+    def explain(self, table: Table) -> Explanation:
         """Explain every row; rows with problems are scored with those cells treated as missing."""
         matrix = self.bundle.builder.transform(table)
         contrib = contributions(self.bundle.booster, matrix.values)
@@ -100,19 +103,14 @@ class Explainer:
         out: list[list[str]] = [[] for _ in range(matrix.values.shape[0])]
         for problem in matrix.problems:
             out[problem.row].append(_problem_text(problem))
-        stats = self.bundle.manifest.stats
-        for position, name in enumerate(matrix.names):
-            low, high = stats[name].minimum, stats[name].maximum
-            if stats[name].categories is not None or low is None or high is None:
-                continue
-            column = matrix.values[:, position]
-            with np.errstate(invalid="ignore"):
-                outside = np.flatnonzero((column < low) | (column > high))
-            for row in outside:
-                out[row].append(
-                    f"{name}={column[row]:.6g} is outside the training range "
-                    f"[{low:.6g}, {high:.6g}]"
-                )
+        with np.errstate(invalid="ignore"):
+            outside = (matrix.values < self._low) | (matrix.values > self._high)
+        for row, position in zip(*np.nonzero(outside), strict=True):
+            name = matrix.names[position]
+            out[row].append(
+                f"{name}={matrix.values[row, position]:.6g} is outside the training range "
+                f"[{self._low[position]:.6g}, {self._high[position]:.6g}]"
+            )
         return out
 
 
@@ -120,7 +118,12 @@ def _problem_text(problem: RowProblem) -> str:
     return f"{problem.column}: {problem.message}; scored as missing"
 
 
-def _ids(table: pd.DataFrame, id_column: str) -> list[str]:
-    if id_column in table.columns:
-        return [str(value) for value in table[id_column].astype("string").fillna("")]
-    return [str(position) for position in range(len(table))]
+def _bound(value: float | None, stats: FeatureStats, default: float) -> float:
+    return default if stats.categories is not None or value is None else value
+
+
+def _ids(table: Table, id_column: str) -> list[str]:
+    if id_column in table:
+        values = column_values(table, id_column, text=True)
+        return ["" if value is None else str(value) for value in values]
+    return [str(position) for position in range(table_rows(table))]

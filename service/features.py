@@ -63,7 +63,10 @@ class FeatureBuilder:
                 if feature.categories is None:
                     raise DataError(f"feature {feature.name!r}: no category list is known")
                 self.categories[feature.name] = list(feature.categories)
-        self._index = {name: pd.Index(values) for name, values in self.categories.items()}
+        self._codes = {
+            name: {value: code for code, value in enumerate(values)}
+            for name, values in self.categories.items()
+        }
 
     @property
     def names(self) -> list[str]:
@@ -86,28 +89,33 @@ class FeatureBuilder:
         present = set(columns)
         return [column for column in self.required_columns if column not in present]
 
-    def transform(self, table: pd.DataFrame) -> FeatureMatrix:
-        """Build the feature matrix; raises :class:`DataError` only for missing columns."""
-        missing = self.missing_columns(table.columns)
+    def transform(self, table: Table) -> FeatureMatrix:
+        """Build the feature matrix; raises :class:`DataError` only for missing columns.
+
+        ``table`` is a DataFrame, or a mapping of column name to equal-length arrays (the HTTP
+        layer's cheaper form for a few events).
+        """
+        missing = self.missing_columns(table.keys())
         if missing:
             raise DataError(f"missing column {missing[0]!r}" + _more(missing))
+        rows = table_rows(table)
         problems: list[RowProblem] = []
         raw_values: dict[str, np.ndarray] = {}
         for feature in self.features:
             if feature.derived:
                 continue
-            column = table[feature.source_column]
+            column = column_values(table, feature.source_column, feature.kind == "categorical")
             if feature.kind == "categorical":
                 values = self._encode(feature, column, problems)
             else:
-                values = _numeric(feature, column, problems)
+                values = _numeric(feature.name, column, problems)
             raw_values[feature.name] = values
         columns = _ColumnView(raw_values, table, problems)
-        out = np.empty((len(table), len(self.features)), dtype=np.float64)
+        out = np.empty((rows, len(self.features)), dtype=np.float64)
         for position, feature in enumerate(self.features):
             if feature.derived:
                 values = self._expressions[feature.name].evaluate(columns)
-                values = np.broadcast_to(values, (len(table),)).astype(np.float64)
+                values = np.broadcast_to(values, (rows,)).astype(np.float64)
                 # A derived value that cannot be computed (say, a division by zero) is missing.
                 values[~np.isfinite(values)] = np.nan
             else:
@@ -119,12 +127,15 @@ class FeatureBuilder:
         return FeatureMatrix(out, self.names, problems)
 
     def _encode(
-        self, feature: FeatureSpec, column: pd.Series, problems: list[RowProblem]
+        self, feature: FeatureSpec, values: np.ndarray, problems: list[RowProblem]
     ) -> np.ndarray:
-        text = column.to_numpy(dtype=object, na_value=None)
-        present = np.array([value is not None for value in text], dtype=bool)
-        cleaned = [str(value).strip() if value is not None else "" for value in text]
-        codes = self._index[feature.name].get_indexer(cleaned).astype(np.float64)
+        present = ~pd.isna(values)
+        # str() matches how training reads category lists (pandas' string conversion).
+        cleaned = [
+            str(value).strip() if ok else "" for value, ok in zip(values, present, strict=True)
+        ]
+        lookup = self._codes[feature.name]
+        codes = np.array([lookup.get(value, -1) for value in cleaned], dtype=np.float64)
         codes[~present] = -1.0
         for row in np.flatnonzero(present & (codes < 0)):
             problems.append(
@@ -134,11 +145,37 @@ class FeatureBuilder:
         return codes
 
 
+Table = pd.DataFrame | Mapping[str, np.ndarray]
+
+
+def table_rows(table: Table) -> int:
+    if isinstance(table, pd.DataFrame):
+        return len(table)
+    return len(next(iter(table.values()))) if table else 0
+
+
+def column_values(table: Table, name: str, text: bool = False) -> np.ndarray:
+    """One column as a NumPy array: float64 for numbers, objects (None for missing) otherwise.
+
+    ``text`` keeps the values as they are (a category ``3`` stays ``3``, not ``3.0``).
+    """
+    column = table[name]
+    if not isinstance(column, pd.Series):
+        return np.asarray(column)
+    if text:
+        return column.to_numpy(dtype=object, na_value=None)
+    if column.dtype.kind in "biuf":
+        return column.to_numpy(dtype=np.float64)
+    if pd.api.types.is_numeric_dtype(column.dtype) or pd.api.types.is_bool_dtype(column.dtype):
+        return column.to_numpy(dtype=np.float64, na_value=np.nan)
+    return column.to_numpy(dtype=object, na_value=None)
+
+
 class _ColumnView(Mapping[str, np.ndarray]):
     """Names an expression may read: raw features, else raw columns converted to numbers."""
 
     def __init__(
-        self, features: dict[str, np.ndarray], table: pd.DataFrame, problems: list[RowProblem]
+        self, features: dict[str, np.ndarray], table: Table, problems: list[RowProblem]
     ) -> None:
         self._features = features
         self._table = table
@@ -146,7 +183,7 @@ class _ColumnView(Mapping[str, np.ndarray]):
 
     def __getitem__(self, name: str) -> np.ndarray:
         if name not in self._features:
-            column = self._table[name]
+            column = column_values(self._table, name)
             self._features[name] = _to_float(name, column, self._problems)
         return self._features[name]
 
@@ -157,28 +194,25 @@ class _ColumnView(Mapping[str, np.ndarray]):
         return len(self._features)
 
 
-def _numeric(feature: FeatureSpec, column: pd.Series, problems: list[RowProblem]) -> np.ndarray:
-    values = _to_float(feature.name, column, problems)
-    _flag_infinite(values, feature.name, problems)
-    values[np.isinf(values)] = np.nan
-    return values
+def _numeric(name: str, values: np.ndarray, problems: list[RowProblem]) -> np.ndarray:
+    out = _to_float(name, values, problems)
+    _flag_infinite(out, name, problems)
+    out[np.isinf(out)] = np.nan
+    return out
 
 
-def _to_float(name: str, column: pd.Series, problems: list[RowProblem]) -> np.ndarray:
+def _to_float(name: str, values: np.ndarray, problems: list[RowProblem]) -> np.ndarray:
     # Numbers need no parsing; this fast path keeps single-event scoring cheap.
-    if column.dtype.kind in "biuf":
-        return column.to_numpy(dtype=np.float64, copy=True)
-    if pd.api.types.is_bool_dtype(column.dtype) or pd.api.types.is_numeric_dtype(column.dtype):
-        return column.astype("float64").to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
-    converted = pd.to_numeric(column, errors="coerce")
-    values = converted.astype("float64").to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
-    bad = np.flatnonzero(column.notna().to_numpy() & np.isnan(values))
-    for row in bad:
-        text = str(column.iloc[row])
+    if values.dtype.kind in "biuf":
+        return values.astype(np.float64, copy=True)
+    converted = pd.to_numeric(pd.Series(values, dtype=object), errors="coerce")
+    out = converted.to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
+    for row in np.flatnonzero(~pd.isna(values) & np.isnan(out)):
+        text = str(values[row])
         if text.strip().lower() in {"nan", ""}:
             continue
         problems.append(RowProblem(int(row), name, f"not a number: {text[:40]!r}"))
-    return values
+    return out
 
 
 def _flag_infinite(values: np.ndarray, name: str, problems: list[RowProblem]) -> None:
