@@ -19,7 +19,8 @@ def main() -> None:
     import pandas as pd
 
     from service.bundle import load_bundle
-    from service.explain import Explainer, contributions
+    from service.explain import Explainer
+    from service.treeshap import contributions
 
     path = demo_bundle()
     bundle = load_bundle(path)

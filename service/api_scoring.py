@@ -18,11 +18,12 @@ from typing import Any
 from starlette.concurrency import run_in_threadpool
 
 from service.api_schema import EventSchema, event_id
-from service.explain import Contributions, Explanation
+from service.explain import Explanation
 from service.features import FeatureMatrix
 from service.problems import FieldError
 from service.registry import Model
 from service.report import explanation_records
+from service.treeshap import Contributions
 
 
 @dataclass

@@ -1,51 +1,23 @@
-"""Exact contributions and the explanation of a table of events.
+"""The explanation of a table of events: scores, contributions and ranked reason codes.
 
-The engine is LightGBM's own TreeSHAP (``Booster.predict(pred_contrib=True)``): exact
-path-dependent SHAP values (Lundberg, Erion & Lee 2018) in the model's raw output, log-odds of an
-event. Calibration comes after the trees, so contributions explain the raw score; the calibrated
-probability is a monotone function of it.
+Contributions are exact path-dependent SHAP values (Lundberg, Erion & Lee 2018) in the model's
+raw output, log-odds of an event, from the fastest exact engine that supports the model
+(``fastshap``, else LightGBM's own in ``treeshap``). Calibration comes after the trees, so
+contributions explain the raw score; the calibrated probability is a monotone function of it.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
-import lightgbm as lgb
 import numpy as np
 
 from service.bundle import Bundle, FeatureStats
+from service.fastshap import FastTreeExplainer
 from service.features import FeatureMatrix, RowProblem, Table, column_values, table_rows
 from service.model import calibrate
 from service.reasons import Reason, ReasonCatalogue
-
-ENGINE = "lightgbm-treeshap"
-SMALL_BATCH = 64
-
-
-@dataclass(frozen=True)
-class Contributions:
-    """SHAP values per event and feature, and the base value they add up from."""
-
-    values: np.ndarray
-    base_value: float
-
-    @property
-    def raw(self) -> np.ndarray:
-        """Base value plus the sum of contributions: the model's raw score (local accuracy)."""
-        return self.base_value + self.values.sum(axis=1)
-
-
-def contributions(booster: lgb.Booster, features: np.ndarray) -> Contributions:
-    """Exact TreeSHAP values for each row of ``features``."""
-    rows = features if features.shape[0] else np.full((1, features.shape[1]), np.nan)
-    # Starting threads costs more than a few rows take to explain on one.
-    threads = 1 if rows.shape[0] <= SMALL_BATCH else 0
-    out = np.asarray(
-        booster.predict(rows, pred_contrib=True, num_threads=threads), dtype=np.float64
-    )
-    # The last column is the expected value, the same on every row.
-    base = float(out[0, -1])
-    return Contributions(values=out[: features.shape[0], :-1], base_value=base)
+from service.treeshap import Contributions
 
 
 @dataclass(frozen=True)
@@ -71,6 +43,7 @@ class Explainer:
         self.top_k = top_k or settings.top_k
         self.min_contribution = settings.min_contribution
         self.catalogue = ReasonCatalogue(bundle.spec, bundle.manifest.stats)
+        self.engine = FastTreeExplainer(bundle.booster)
         stats = [bundle.manifest.stats[name] for name in bundle.spec.feature_names]
         # Categorical and range-less features get infinite bounds: never "outside".
         self._low = np.array([_bound(s.minimum, s, -np.inf) for s in stats])
@@ -79,7 +52,7 @@ class Explainer:
     def explain(self, table: Table) -> Explanation:
         """Explain every row; rows with problems are scored with those cells treated as missing."""
         matrix = self.bundle.builder.transform(table)
-        contrib = contributions(self.bundle.booster, matrix.values)
+        contrib = self.engine.contributions(matrix.values)
         probability = calibrate(self.bundle.manifest.calibration, contrib.raw)
         codes = self.catalogue.aggregate(contrib.values, matrix.values)
         ranked = self.catalogue.rank(codes, self.top_k, self.min_contribution)

@@ -19,8 +19,9 @@ import numpy as np
 import pytest
 import shap
 
-from service.explain import Explainer, contributions
+from service.explain import Explainer
 from service.model import raw_score
+from service.treeshap import contributions
 
 SEEDS = [0, 1, 2]
 

@@ -29,11 +29,13 @@ from service.bundle import (
     sha256_file,
 )
 from service.errors import DataError
-from service.explain import ENGINE, contributions
+from service.fastshap import FastTreeExplainer
 from service.features import FeatureBuilder
 from service.model import calibrate
 from service.storage import atomic_directory
 from service.tables import read_table
+from service.treeshap import contributions
+from training.build import RawPaths, build_table, read_inputs
 from training.card import model_card
 from training.checks import (
     check_columns,
@@ -65,6 +67,16 @@ def train(config_path: Path, data_path: Path, out: Path) -> TrainResult:
     manifest, model_text = fit_bundle(config, table, fingerprint=sha256_file(Path(data_path)))
     write_bundle(out, manifest, model_text)
     # Load what was written, so a bundle that would not load is never reported as trained.
+    bundle = load_bundle(out)
+    return TrainResult(path=Path(out), manifest=bundle.manifest)
+
+
+def train_timeline(config_path: Path, paths: RawPaths, out: Path) -> TrainResult:
+    """Train straight from raw timelines: build the snapshot table, then as :func:`train`."""
+    config = load_config(config_path)
+    table = build_table(config, read_inputs(config, paths)).table
+    manifest, model_text = fit_bundle(config, table, fingerprint=paths.fingerprint())
+    write_bundle(out, manifest, model_text)
     bundle = load_bundle(out)
     return TrainResult(path=Path(out), manifest=bundle.manifest)
 
@@ -107,7 +119,9 @@ def fit_bundle(config: TrainConfig, table: pd.DataFrame, fingerprint: str) -> tu
         explain=config.explain,
         calibration=calibration,
         decision=decision,
-        explainer=ExplainerInfo(method=ENGINE, base_value=base_value),
+        explainer=ExplainerInfo(
+            method=FastTreeExplainer(trees.booster).engine, base_value=base_value
+        ),
         metrics=held_out_metrics(y[split.test], p_test, decision.threshold),
         training={
             "rows": int(y.size),
