@@ -149,9 +149,8 @@ def require_admin(
 ) -> None:
     """Admin endpoints: a valid key always; with no keys only when explicitly allowed."""
     keys = _service(request).keys
-    if keys.enabled:
-        keys.check(presented_key(request))
-    elif not keys.admin_without_keys:
+    require_key(request, _bearer, _header)
+    if not keys.enabled and not keys.admin_without_keys:
         raise Problem(
             403, "admin endpoints need API keys (CAUSELINE_API_KEYS); or set "
             "CAUSELINE_ADMIN_WITHOUT_KEYS=1 on a trusted network", "admin-disabled",
