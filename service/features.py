@@ -63,6 +63,11 @@ class FeatureBuilder:
                 if feature.categories is None:
                     raise DataError(f"feature {feature.name!r}: no category list is known")
                 self.categories[feature.name] = list(feature.categories)
+        self._numeric_positions = [
+            i for i, f in enumerate(self.features) if not f.derived and f.kind == "numeric"
+        ]
+        self._derived_positions = [i for i, f in enumerate(self.features) if f.derived]
+        self._required_positions = [i for i, f in enumerate(self.features) if not f.allow_missing]
         self._codes = {
             name: {value: code for code, value in enumerate(values)}
             for name, values in self.categories.items()
@@ -100,30 +105,37 @@ class FeatureBuilder:
             raise DataError(f"missing column {missing[0]!r}" + _more(missing))
         rows = table_rows(table)
         problems: list[RowProblem] = []
+        out = np.empty((rows, len(self.features)), dtype=np.float64)
         raw_values: dict[str, np.ndarray] = {}
-        for feature in self.features:
+        for position, feature in enumerate(self.features):
             if feature.derived:
                 continue
             column = column_values(table, feature.source_column, feature.kind == "categorical")
             if feature.kind == "categorical":
-                values = self._encode(feature, column, problems)
+                out[:, position] = self._encode(feature, column, problems)
             else:
-                values = _numeric(feature.name, column, problems)
-            raw_values[feature.name] = values
+                out[:, position] = _to_float(feature.name, column, problems)
+            raw_values[feature.name] = out[:, position]
+        # One pass over every raw number: infinity is a problem, scored as missing.
+        raw = self._numeric_positions
+        infinite = np.isinf(out[:, raw])
+        if infinite.any():
+            for row, column in zip(*np.nonzero(infinite), strict=True):
+                problems.append(RowProblem(int(row), self.names[raw[column]], "value is infinite"))
+            block = out[:, raw]
+            block[infinite] = np.nan
+            out[:, raw] = block
         columns = _ColumnView(raw_values, table, problems)
-        out = np.empty((rows, len(self.features)), dtype=np.float64)
-        for position, feature in enumerate(self.features):
-            if feature.derived:
-                values = self._expressions[feature.name].evaluate(columns)
-                values = np.broadcast_to(values, (rows,)).astype(np.float64)
-                # A derived value that cannot be computed (say, a division by zero) is missing.
-                values[~np.isfinite(values)] = np.nan
-            else:
-                values = raw_values[feature.name]
-            if not feature.allow_missing:
-                for row in np.flatnonzero(np.isnan(values)):
-                    problems.append(RowProblem(int(row), feature.name, "value is missing"))
+        for position in self._derived_positions:
+            feature = self.features[position]
+            values = self._expressions[feature.name].evaluate(columns)
+            values = np.broadcast_to(values, (rows,)).astype(np.float64)
+            # A derived value that cannot be computed (say, a division by zero) is missing.
+            values[~np.isfinite(values)] = np.nan
             out[:, position] = values
+        for position in self._required_positions:
+            for row in np.flatnonzero(np.isnan(out[:, position])):
+                problems.append(RowProblem(int(row), self.names[position], "value is missing"))
         return FeatureMatrix(out, self.names, problems)
 
     def _encode(
@@ -194,13 +206,6 @@ class _ColumnView(Mapping[str, np.ndarray]):
         return len(self._features)
 
 
-def _numeric(name: str, values: np.ndarray, problems: list[RowProblem]) -> np.ndarray:
-    out = _to_float(name, values, problems)
-    _flag_infinite(out, name, problems)
-    out[np.isinf(out)] = np.nan
-    return out
-
-
 def _to_float(name: str, values: np.ndarray, problems: list[RowProblem]) -> np.ndarray:
     # Numbers need no parsing; this fast path keeps single-event scoring cheap.
     if values.dtype.kind in "biuf":
@@ -213,11 +218,6 @@ def _to_float(name: str, values: np.ndarray, problems: list[RowProblem]) -> np.n
             continue
         problems.append(RowProblem(int(row), name, f"not a number: {text[:40]!r}"))
     return out
-
-
-def _flag_infinite(values: np.ndarray, name: str, problems: list[RowProblem]) -> None:
-    for row in np.flatnonzero(np.isinf(values)):
-        problems.append(RowProblem(int(row), name, "value is infinite"))
 
 
 def _more(items: list[str]) -> str:

@@ -57,7 +57,20 @@ class ReasonCatalogue:
         ]
         self.index = {code.code: position for position, code in enumerate(self.codes)}
         position = {name: i for i, name in enumerate(self.feature_names)}
-        self._columns = [[position[name] for name in code.features] for code in self.codes]
+        # Which features each code sums, and the side of its first feature it claims.
+        self._membership = np.zeros((len(self.feature_names), len(self.codes)))
+        for column, code in enumerate(self.codes):
+            for name in code.features:
+                self._membership[position[name], column] = 1.0
+        self._primary = np.array([position[code.features[0]] for code in self.codes], dtype=int)
+        typical = [self.stats[code.features[0]].typical for code in self.codes]
+        numeric = np.array([isinstance(t, float | int) for t in typical])
+        directions = np.array([code.direction for code in self.codes])
+        self._high = (directions == "high") & numeric
+        self._low = (directions == "low") & numeric
+        # A directional code without a numeric typical value can never claim its features.
+        self._never = (directions != "any") & ~numeric
+        self._typical = np.array([t if isinstance(t, float | int) else np.nan for t in typical])
         self._categories = {
             name: s.categories for name, s in self.stats.items() if s.categories is not None
         }
@@ -68,21 +81,15 @@ class ReasonCatalogue:
 
     def aggregate(self, contributions: np.ndarray, features: np.ndarray) -> np.ndarray:
         """Per-event contribution of each code, shape (events, codes), in log-odds."""
-        out = np.zeros((contributions.shape[0], len(self.codes)), dtype=np.float64)
-        for position, code in enumerate(self.codes):
-            columns = self._columns[position]
-            summed = contributions[:, columns].sum(axis=1)
-            if code.direction == "any":
-                out[:, position] = summed
-                continue
-            primary = features[:, columns[0]]
-            typical = self.stats[code.features[0]].typical
-            if not isinstance(typical, float | int):
-                continue
-            with np.errstate(invalid="ignore"):
-                side = primary > typical if code.direction == "high" else primary < typical
-            out[:, position] = np.where(side, summed, 0.0)
-        return out
+        summed = contributions @ self._membership
+        with np.errstate(invalid="ignore"):
+            primary = features[:, self._primary]
+            # NaN compares false on both sides: a missing value stays in the remainder.
+            side = np.where(
+                self._high, primary > self._typical,
+                np.where(self._low, primary < self._typical, ~self._never),
+            )
+        return np.where(side, summed, 0.0)
 
     def rank(
         self, code_contributions: np.ndarray, top_k: int, min_contribution: float
