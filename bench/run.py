@@ -7,7 +7,7 @@ import sys
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
-BENCHMARKS = ["explain.py", "serving.py", "fastshap.py", "rootcause.py"]
+BENCHMARKS = ["explain.py", "serving.py", "fastshap.py", "timeline.py", "rootcause.py"]
 
 
 def main() -> int:

@@ -30,9 +30,22 @@ def _parser() -> argparse.ArgumentParser:
 
     train = commands.add_parser("train", help="train a bundle from a table of historical events")
     train.add_argument("--config", required=True, type=Path, help="data-set config (YAML)")
-    train.add_argument("--data", required=True, type=Path, help="event table (CSV or Parquet)")
+    train.add_argument("--data", type=Path, help="event table (CSV or Parquet)")
     train.add_argument("--out", required=True, type=Path, help="bundle folder to write")
+    _raw_arguments(train, "instead of --data: ")
     train.set_defaults(run=_train)
+
+    build = commands.add_parser(
+        "build", help="build labelled snapshots from raw timelines (config's timeline section)"
+    )
+    build.add_argument("--config", required=True, type=Path, help="data-set config (YAML)")
+    _raw_arguments(build, "")
+    build.add_argument("--out", type=Path, help="snapshot table to write (CSV or Parquet)")
+    build.add_argument(
+        "--list-features", action="store_true",
+        help="print the names of the features the timeline section builds, and stop",
+    )
+    build.set_defaults(run=_build)
 
     explain = commands.add_parser("explain", help="score events and attach reason codes")
     explain.add_argument("--bundle", required=True, type=Path)
@@ -74,10 +87,49 @@ def _parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _train(args: argparse.Namespace) -> int:
-    from training.pipeline import train
+def _raw_arguments(parser: argparse.ArgumentParser, prefix: str) -> None:
+    parser.add_argument("--readings", type=Path, help=prefix + "raw readings log")
+    parser.add_argument("--events", type=Path, help=prefix + "failure (event) log")
+    parser.add_argument("--actions", type=Path, help=prefix + "maintenance log")
+    parser.add_argument("--attributes", type=Path, help=prefix + "static attributes per entity")
 
-    result = train(args.config, args.data, args.out)
+
+def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
+    from training.build import RawPaths
+
+    if args.readings is None:
+        raise CauselineError("give --readings (and --events, maybe --actions, --attributes)")
+    return RawPaths(args.readings, args.events, args.actions, args.attributes)
+
+
+def _build(args: argparse.Namespace) -> int:
+    from service.timeline import feature_names
+    from training.build import build, timeline_of
+    from training.config import load_config
+
+    if args.list_features:
+        for name in feature_names(timeline_of(load_config(args.config))):
+            print(name)
+        return 0
+    if args.out is None:
+        raise CauselineError("give --out (or --list-features)")
+    result = build(args.config, _raw_paths(args), args.out)
+    counts = "  ".join(f"{status}: {count}" for status, count in result.counts.items())
+    print(f"snapshots: {counts}")
+    print(f"wrote {len(result.table)} labelled snapshots -> {args.out}")
+    return 0
+
+
+def _train(args: argparse.Namespace) -> int:
+    from training.pipeline import train, train_timeline
+
+    raw = any(getattr(args, k) is not None for k in ("readings", "events", "actions", "attributes"))
+    if (args.data is None) == (not raw):
+        raise CauselineError("give either --data or the raw logs (--readings, --events, ...)")
+    if raw:
+        result = train_timeline(args.config, _raw_paths(args), args.out)
+    else:
+        result = train(args.config, args.data, args.out)
     manifest = result.manifest
     metrics = manifest.metrics
     print(f"bundle: {result.path} ({manifest.name} {manifest.version})")
