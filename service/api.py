@@ -3,6 +3,7 @@
 Endpoints (all under ``/v1`` except metrics and the OpenAPI document):
 
 - ``POST /v1/score``: probabilities, decisions and reason codes for a batch of events;
+- ``POST /v1/score/timeline``: the same for one entity, from its raw logs;
 - ``GET /v1/models`` and ``GET /v1/models/{name}``: what is served and each model's schema;
 - ``GET /v1/health/live`` and ``GET /v1/health/ready``: for probes (never behind a key);
 - ``POST /v1/admin/reload``: load the bundles again and swap them in (always behind a key);
@@ -18,7 +19,7 @@ import signal
 import threading
 from collections.abc import AsyncIterator
 from dataclasses import dataclass
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 from fastapi import Depends, FastAPI, Query, Request, Security
 from fastapi.responses import JSONResponse, Response
@@ -43,7 +44,9 @@ from service.api_models import (
     ReloadResult,
     ScoreRequest,
     ScoreResponse,
+    TimelineScoreRequest,
 )
+from service.api_online import online_event
 from service.api_predlog import BackgroundLog
 from service.api_schema import EventSchema
 from service.api_scoring import Batcher, log_records
@@ -231,34 +234,25 @@ def _routes(app: FastAPI) -> None:
         ),
     ) -> Response:
         """Probability, decision and ranked reason codes for each event."""
-        service = _service(request)
-        current = service.current
+        return await _score(request, payload.model, payload.events, contributions == "all")
+
+    @app.post(
+        "/v1/score/timeline", response_model=ScoreResponse, dependencies=keyed,
+        tags=["scoring"], responses=problems.responses(400, 401, 403, 413, 422, 500),
+    )
+    async def score_timeline(
+        request: Request,
+        payload: TimelineScoreRequest,
+        contributions: Literal["all"] | None = Query(
+            default=None, description="'all' adds every feature's contribution and base value"
+        ),
+    ) -> Response:
+        """Score one entity from its raw logs: the snapshot is built by the batch build's code."""
+        current = _service(request).current
         assert current is not None
-        model, schema = current.pick(payload.model)
-        limit = service.settings.max_events
-        if len(payload.events) > limit:
-            raise Problem(
-                413, f"{len(payload.events)} events; at most {limit} per request",
-                "too-many-events",
-                [FieldError(field="events", message=f"at most {limit} events per request")],
-            )
-        errors = schema.check(payload.events)
-        if not errors:
-            scored = await service.batcher.score(
-                model, schema, payload.events, contributions == "all"
-            )
-            errors = scored.errors
-        if errors:
-            raise Problem(
-                422, f"{len(errors)} invalid field(s) in {len(payload.events)} event(s)",
-                "invalid-events", errors,
-            )
-        _count(service, model, scored.records)
-        if service.log is not None:
-            service.log.submit(log_records(model, payload.events, scored.records))
-        body = {"model": {"name": model.name, "version": model.version},
-                "results": scored.records}
-        return JSONResponse(body)
+        model, _ = current.pick(payload.model)
+        event = await run_in_threadpool(online_event, model.bundle, payload)
+        return await _score(request, payload.model, [event], contributions == "all")
 
     @app.get("/v1/models", response_model=ModelList, dependencies=keyed, tags=["models"],
              responses=problems.responses(401, 403))
@@ -332,11 +326,44 @@ def _routes(app: FastAPI) -> None:
         return ReloadResult(models=refs, previous=before)
 
     @app.get("/metrics", dependencies=keyed, tags=["health"], response_class=Response,
-             responses={200: {"content": {"text/plain": {}}, "description": "Prometheus text"}})
+             responses={200: {"content": {"text/plain": {}}, "description": "Prometheus text"},
+                        **problems.responses(401, 403)})
     def metrics(request: Request) -> Response:
         """Prometheus metrics of this process."""
         data, content_type = _service(request).metrics.exposition()
         return Response(data, media_type=content_type)
+
+
+async def _score(
+    request: Request, name: str | None, events: list[dict[str, Any]], all_contributions: bool
+) -> Response:
+    """The scoring both endpoints share: checks, batched explanation, counting and logging."""
+    service = _service(request)
+    current = service.current
+    assert current is not None
+    model, schema = current.pick(name)
+    limit = service.settings.max_events
+    if len(events) > limit:
+        raise Problem(
+            413, f"{len(events)} events; at most {limit} per request",
+            "too-many-events",
+            [FieldError(field="events", message=f"at most {limit} events per request")],
+        )
+    errors = schema.check(events)
+    if not errors:
+        scored = await service.batcher.score(model, schema, events, all_contributions)
+        errors = scored.errors
+    if errors:
+        raise Problem(
+            422, f"{len(errors)} invalid field(s) in {len(events)} event(s)",
+            "invalid-events", errors,
+        )
+    _count(service, model, scored.records)
+    if service.log is not None:
+        service.log.submit(log_records(model, events, scored.records))
+    body = {"model": {"name": model.name, "version": model.version},
+            "results": scored.records}
+    return JSONResponse(body)
 
 
 def _count(service: Service, model: Model, records: list[dict[str, object]]) -> None:

@@ -23,6 +23,30 @@ class ScoreRequest(BaseModel):
     )
 
 
+class TimelineScoreRequest(BaseModel):
+    """One entity's raw logs; the service builds its latest snapshot as ``causeline build`` does."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    model: str | None = Field(
+        default=None, description="bundle name; omit to use the default model"
+    )
+    readings: list[dict[str, Any]] = Field(
+        min_length=1, description="the entity's readings covering the look-back windows"
+    )
+    failures: list[dict[str, Any]] = Field(default_factory=list, description="earlier failures")
+    actions: list[dict[str, Any]] = Field(
+        default_factory=list, description="earlier maintenance actions"
+    )
+    attributes: dict[str, Any] | None = Field(
+        default=None, description="the entity's static attributes"
+    )
+    at: str | float | None = Field(
+        default=None,
+        description="snapshot time (ISO time, or a cycle number); default: the latest reading",
+    )
+
+
 class ModelRef(BaseModel):
     name: str
     version: str
