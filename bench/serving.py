@@ -94,6 +94,8 @@ async def _load(
                 status, _ = await _read_response(reader)
                 run.latencies.append(time.perf_counter() - started)
                 run.errors += status != 200
+        except (OSError, asyncio.IncompleteReadError, ValueError):
+            run.errors += 1  # a dropped connection or a broken answer: a failed request
         finally:
             writer.close()
 

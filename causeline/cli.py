@@ -57,6 +57,7 @@ def _parser() -> argparse.ArgumentParser:
         action="store_true",
         help="add every feature's contribution and the base value",
     )
+    _engine_arguments(explain)
     explain.set_defaults(run=_explain)
 
     rootcause = commands.add_parser("rootcause", help="group events into root-cause groups")
@@ -74,6 +75,7 @@ def _parser() -> argparse.ArgumentParser:
     rootcause.add_argument("--until", help="time to stop before (exclusive)")
     rootcause.add_argument("--previous", type=Path, help="previous run's folder, to keep ids")
     rootcause.add_argument("--min-group-size", type=int, help="override the smallest group size")
+    _engine_arguments(rootcause)
     rootcause.set_defaults(run=_rootcause)
 
     serve = commands.add_parser(
@@ -149,15 +151,21 @@ def _explain(args: argparse.Namespace) -> int:
     from service.bundle import load_bundle
     from service.csvsafe import escape_frame
     from service.explain import Explainer
+    from service.rejects import read_lenient, rejects_path, write_rejects
     from service.report import explanation_frame, explanation_records
     from service.storage import atomic_file
-    from service.tables import read_table, table_format, write_table
+    from service.tables import table_format, write_table
 
     if args.top is not None and args.top < 1:
         raise CauselineError("--top must be at least 1")
     bundle = load_bundle(args.bundle)
+    if _use_dask(args):
+        return _explain_dask(args, bundle)
     kind = table_format(args.out)
-    table = read_table(args.input, text_columns=[bundle.spec.id])
+    # Unreadable rows go to a rejects file; rows with a bad cell are scored with it as missing
+    # and a warning (dropping them could hide an alert).
+    read = read_lenient(args.input, text_columns=[bundle.spec.id])
+    table = read.table
     explainer = Explainer(bundle, top_k=args.top)
     explanation = explainer.explain(table)
     threshold = bundle.manifest.decision.threshold
@@ -172,7 +180,10 @@ def _explain(args: argparse.Namespace) -> int:
             explanation, threshold, names, explainer.top_k, args.all_contributions
         )
         write_table(escape_frame(frame) if kind == "csv" else frame, args.out)
+    write_rejects(read.rejects, rejects_path(args.out))
     _print_explain_summary(explanation, args.out)
+    if len(read.rejects):
+        print(f"rejected: {len(read.rejects)} unreadable rows -> {rejects_path(args.out)}")
     return 0
 
 
@@ -184,15 +195,24 @@ def _rootcause(args: argparse.Namespace) -> int:
         predicted=args.predicted, since=args.since, until=args.until,
         previous=args.previous, min_group_size=args.min_group_size,
     )
-    result = run_rootcause(
-        load_bundle(args.bundle), args.events, args.out, options,
-        progress=lambda message: print(message, file=sys.stderr, flush=True),
-    )
+    if _use_dask(args):
+        from service.dask_rootcause import run_rootcause_dask
+
+        result = run_rootcause_dask(
+            load_bundle(args.bundle), args.events, args.out, options, _dask_settings(args),
+            progress=_progress,
+        )
+    else:
+        result = run_rootcause(
+            load_bundle(args.bundle), args.events, args.out, options, progress=_progress
+        )
     counts = result.summary["counts"]
     print(
         f"grouped {counts['events']} events: {counts['groups']} groups, "
         f"{counts['ungrouped']} ungrouped -> {args.out}"
     )
+    if counts["rejected"]:
+        print(f"rejected: {counts['rejected']} rows (reasons in {args.out / 'rejects.csv'})")
     for record in result.groups.to_dict("records"):
         status = record["status"] if isinstance(record["status"], str) else ""
         print(f"  {record['group_id']:<12} {status:<9} {record['events']:>7}  {record['label']}")
@@ -209,18 +229,61 @@ def _serve(args: argparse.Namespace) -> int:
     return 0
 
 
+def _engine_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--engine", choices=("local", "dask"), default="local",
+        help="local: one process (default); dask: partitions on a Dask cluster",
+    )
+    parser.add_argument(
+        "--scheduler", metavar="ADDRESS",
+        help="Dask scheduler, e.g. tcp://host:8786 (default with --engine dask: a local cluster "
+        "of 2 worker processes started for the run)",
+    )
+
+
+def _use_dask(args: argparse.Namespace) -> bool:
+    if args.scheduler and args.engine != "dask":
+        raise CauselineError("--scheduler needs --engine dask")
+    return bool(args.engine == "dask")
+
+
+def _dask_settings(args: argparse.Namespace):  # type: ignore[no-untyped-def]
+    from service.dask_engine import DaskSettings
+
+    return DaskSettings(scheduler=args.scheduler)
+
+
+def _progress(message: str) -> None:
+    print(message, file=sys.stderr, flush=True)
+
+
+def _explain_dask(args: argparse.Namespace, bundle) -> int:  # type: ignore[no-untyped-def]
+    from service.dask_engine import explain_partitions
+
+    totals = explain_partitions(
+        bundle, args.input, args.out, args.top, args.all_contributions, _dask_settings(args)
+    )
+    _print_explain_counts(totals.rows, totals.flagged, totals.warned, totals.leading, args.out)
+    return 0
+
+
 def _print_explain_summary(explanation, out: Path) -> None:  # type: ignore[no-untyped-def]
-    rows = len(explanation.ids)
-    flagged = int(explanation.decision.sum())
-    warned = sum(1 for w in explanation.warnings if w)
-    print(f"explained: {rows} events, {flagged} at or above the threshold -> {out}")
-    if warned:
-        print(f"warnings: {warned} events (see the warnings column)")
     leading = Counter(
         reasons[0].code
         for reasons, flagged_row in zip(explanation.reasons, explanation.decision, strict=True)
         if reasons and flagged_row
     )
+    warned = sum(1 for w in explanation.warnings if w)
+    rows, flagged = len(explanation.ids), int(explanation.decision.sum())
+    _print_explain_counts(rows, flagged, warned, leading, out)
+
+
+def _print_explain_counts(
+    rows: int, flagged: int, warned: int, leading: Counter[str], out: Path
+) -> None:
+    print(f"explained: {rows} events, {flagged} at or above the threshold -> {out}")
+    if warned:
+        print(f"warnings: {warned} events (see the warnings column)")
     if leading:
         print("leading reason code of the flagged events:")
         for code, count in leading.most_common(10):

@@ -11,6 +11,7 @@ Loading parses JSON and LightGBM's text format only; nothing in a bundle can run
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import re
@@ -171,7 +172,9 @@ def load_bundle(path: Path) -> Bundle:
     except ConfigError as exc:
         raise BundleError(str(exc)) from None
     try:
-        booster = lgb.Booster(model_str=(path / MODEL).read_text("utf-8"))
+        model_text = (path / MODEL).read_text("utf-8")
+        _check_model_text(model_text, path / MODEL)
+        booster = lgb.Booster(model_str=model_text)
     except (lgb.basic.LightGBMError, UnicodeDecodeError) as exc:
         raise BundleError(f"{path / MODEL}: not a LightGBM text model ({exc})") from None
     names = manifest.dataset.feature_names
@@ -179,3 +182,27 @@ def load_bundle(path: Path) -> Bundle:
         raise BundleError(f"{path}: the model's features do not match the manifest's")
     builder = FeatureBuilder(manifest.dataset.features, manifest.categories())
     return Bundle(path=path, manifest=manifest, booster=booster, builder=builder)
+
+
+_TREE_SIZES = re.compile(r"^tree_sizes=([0-9 ]*)$", re.MULTILINE)
+
+
+def _check_model_text(text: str, where: Path) -> None:
+    """Refuse a model text that is cut short: LightGBM's parser aborts the process on one.
+
+    The header's ``tree_sizes`` gives each tree's length, so the trees must end exactly where
+    ``end of trees`` starts, and the text must end with its complete last line.
+    """
+    sizes = _TREE_SIZES.search(text)
+    first = text.find("\nTree=0\n")
+    last_line = text.rstrip("\n").rsplit("\n", 1)[-1]
+    whole = sizes is not None and text.endswith("\n") and last_line.startswith(
+        "pandas_categorical:") and "\nend of parameters\n" in text
+    if whole and sizes is not None and first >= 0:
+        end = first + 1 + sum(int(size) for size in sizes.group(1).split())
+        whole = text[end:end + 40].lstrip("\n").startswith("end of trees")
+    if whole:
+        with contextlib.suppress(json.JSONDecodeError):
+            json.loads(last_line.removeprefix("pandas_categorical:"))
+            return
+    raise BundleError(f"{where}: the LightGBM model text is cut short or altered; refusing to load")

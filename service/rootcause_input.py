@@ -17,7 +17,8 @@ import pandas as pd
 from service.bundle import Bundle
 from service.errors import DataError
 from service.predlog import is_prediction_log, read_prediction_log
-from service.tables import binary_column, read_table
+from service.rejects import empty_rejects, read_lenient
+from service.tables import binary_column
 
 LOG_TIME = "log_logged_at"
 LOG_ID = "log_id"
@@ -26,12 +27,18 @@ LOG_ID = "log_id"
 
 @dataclass(frozen=True)
 class EventInput:
-    """The whole input table and where its ids and times come from."""
+    """The readable input rows, where ids and times come from, and the rows set aside.
+
+    ``rows`` holds each table row's number in the source (its line in a CSV or JSON-lines file);
+    ``rejects`` the rows that could not be read (:mod:`service.rejects`).
+    """
 
     table: pd.DataFrame
     id_column: str
     time_column: str | None
     from_log: bool
+    rows: np.ndarray
+    rejects: pd.DataFrame
 
 
 def read_events(bundle: Bundle, path: Path) -> EventInput:
@@ -45,14 +52,15 @@ def read_events(bundle: Bundle, path: Path) -> EventInput:
         for column in (id_column, spec.entity):
             if column is not None and column in table.columns:
                 table[column] = table[column].astype("string")
-        return EventInput(table, id_column, LOG_TIME, from_log=True)
+        rows = np.arange(1, len(table) + 1)
+        return EventInput(table, id_column, LOG_TIME, True, rows, empty_rejects(table.columns))
     if path.is_dir():
         raise DataError(f"{path}: a folder without prediction-log segments")
     text = [c for c in (spec.id, spec.entity) if c is not None]
-    table = read_table(path, text_columns=text)
-    if spec.id not in table.columns:
+    read = read_lenient(path, text_columns=text)
+    if spec.id not in read.table.columns:
         raise DataError(f"{path}: no id column {spec.id!r}")
-    return EventInput(table, spec.id, spec.time, from_log=False)
+    return EventInput(read.table, spec.id, spec.time, False, read.rows, read.rejects)
 
 
 def event_labels(column: pd.Series, name: str) -> np.ndarray:

@@ -19,9 +19,18 @@ from service import htmlreport
 from service.bundle import Bundle
 from service.csvsafe import escape_frame
 from service.errors import DataError
-from service.explain import Explainer
+from service.explain import Explainer, Explanation
 from service.model import probability
 from service.predlog import is_prediction_log
+from service.reasons import ReasonCatalogue
+from service.rejects import (
+    add_rejects,
+    cell_reasons,
+    keep_mask,
+    label_reasons,
+    merge_reasons,
+    write_rejects,
+)
 from service.rootcause import (
     LEADING_SHARE,
     UNGROUPED,
@@ -45,6 +54,7 @@ from service.tracking import (
     MATCH_SIMILARITY,
     RELATIVE_TOLERANCE,
     SUMMARY,
+    PreviousRun,
     read_previous,
     summary_groups,
     track,
@@ -53,6 +63,7 @@ from service.tracking import (
 GROUPS = "groups.csv"
 EVENT_GROUPS = "event_groups.csv"
 REPORT = "report.html"
+REJECTS = "rejects.csv"
 CAUTION = (
     "Model estimates, not a diagnosis. Groups, reason codes and events avoidable come from a "
     "statistical model of past data; they show associations and may be wrong. Where food or "
@@ -69,6 +80,42 @@ class RootCauseOptions:
     until: str | None = None
     previous: Path | None = None
     min_group_size: int | None = None
+
+
+@dataclass(frozen=True)
+class JobStart:
+    """Options checked before any work: the window and the previous run's groups."""
+
+    since: pd.Timestamp | None
+    until: pd.Timestamp | None
+    previous: PreviousRun | None
+
+
+@dataclass(frozen=True)
+class SelectedEvents:
+    """The selected events, explained: what every engine hands to :func:`finish_rootcause`.
+
+    ``events`` holds their input rows (index 0..n-1); ``reference`` the feature rows co-driver
+    shifts of the fix simulation are fitted on (:mod:`service.rootcause_fix`).
+    """
+
+    events: pd.DataFrame
+    times: pd.Series
+    explanation: Explanation
+    reference: np.ndarray
+    rejects: pd.DataFrame
+    time_column: str | None
+    rows_read: int
+    rows_in_window: int
+
+
+@dataclass(frozen=True)
+class Grouping:
+    """Each selected event's group label (-1 ungrouped), strength and how they were found."""
+
+    labels: np.ndarray
+    strength: np.ndarray
+    parameters: dict[str, Any]
 
 
 @dataclass(frozen=True)
@@ -92,12 +139,8 @@ def run_rootcause(
     """Group the selected events and write the outputs into ``out``."""
     options = options or RootCauseOptions()
     out = Path(out)
-    _check_out(out)
-    if options.min_group_size is not None and options.min_group_size < 2:
-        raise DataError("--min-group-size must be at least 2")
-    since = parse_time(options.since, "--since")
-    until = parse_time(options.until, "--until")
-    previous = read_previous(options.previous) if options.previous else None
+    start = start_rootcause(out, options)
+    since, until = start.since, start.until
 
     if is_prediction_log(events_path) and not options.predicted:
         raise DataError(
@@ -108,20 +151,28 @@ def run_rootcause(
     source = read_events(bundle, events_path)
     spec = bundle.spec
     times = event_times(source)
-    table = source.table[window_mask(times, since, until, source.time_column)]
+    window = window_mask(times, since, until, source.time_column)
+    table = source.table[window]
     times = times.loc[table.index]
 
     progress(f"step 2/{STEPS}: selecting events among {len(table):,} rows")
-    reference = bundle.builder.transform(table).values
-    threshold = bundle.manifest.decision.threshold
-    if options.predicted:
-        selected = probability(bundle, reference) >= threshold
-    else:
+    features = bundle.builder.transform(table)
+    # A row with a bad cell or label is set aside: a group built on guessed values would mislead.
+    bad = cell_reasons(features.problems)
+    if not options.predicted:
         if spec.target not in table.columns:
             raise DataError(
                 f"{events_path}: no label column {spec.target!r}; pass --predicted to group "
                 "rows scored at or above the threshold"
             )
+        bad = merge_reasons(bad, label_reasons(table[spec.target], spec.target))
+    rejects = add_rejects(source.rejects, table, source.rows[window], bad)
+    keep = keep_mask(len(table), bad)
+    table, times, reference = table[keep], times[keep], features.values[keep]
+    threshold = bundle.manifest.decision.threshold
+    if options.predicted:
+        selected = probability(bundle, reference) >= threshold
+    else:
         selected = event_labels(table[spec.target], spec.target)
     events = table[selected].reset_index(drop=True)
     times = times[selected].reset_index(drop=True)
@@ -129,20 +180,62 @@ def run_rootcause(
     progress(f"step 3/{STEPS}: explaining {len(events):,} events")
     explainer = Explainer(bundle)
     explanation = explainer.explain(events)
-    codes = explainer.catalogue.code_ids
     mix, has_cause = cause_mix(explanation.code_contributions)
 
     progress(f"step 4/{STEPS}: clustering")
     finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mix, has_cause)
-    found = find_groups(mix, finder.labels_, codes)
+    selection = SelectedEvents(
+        events=events, times=times, explanation=explanation, reference=reference,
+        rejects=rejects, time_column=source.time_column,
+        rows_read=len(source.table) + len(source.rejects), rows_in_window=len(table),
+    )
+    grouping = Grouping(finder.labels_, finder.strength_, {
+        "min_cluster_size": finder.min_cluster_size_, "min_samples": finder.min_samples_,
+    })
+    return finish_rootcause(bundle, events_path, out, options, start, selection, grouping, progress)
+
+
+def start_rootcause(out: Path, options: RootCauseOptions) -> JobStart:
+    """Check the options and the output folder before any work, so a bad flag fails at once."""
+    _check_out(Path(out))
+    if options.min_group_size is not None and options.min_group_size < 2:
+        raise DataError("--min-group-size must be at least 2")
+    return JobStart(
+        since=parse_time(options.since, "--since"),
+        until=parse_time(options.until, "--until"),
+        previous=read_previous(options.previous) if options.previous else None,
+    )
+
+
+def finish_rootcause(
+    bundle: Bundle,
+    events_path: Path,
+    out: Path,
+    options: RootCauseOptions,
+    start: JobStart,
+    selection: SelectedEvents,
+    grouping: Grouping,
+    progress=_quiet,  # type: ignore[no-untyped-def]
+) -> RootCauseResult:
+    """Describe, track and write the groups: the part every engine shares."""
+    events, times, explanation = selection.events, selection.times, selection.explanation
+    reference, rejects = selection.reference, selection.rejects
+    since, until = start.since, start.until
+    labels, strength = grouping.labels, grouping.strength
+    catalogue = ReasonCatalogue(bundle.spec, bundle.manifest.stats)
+    codes = catalogue.code_ids
+    spec = bundle.spec
+    threshold = bundle.manifest.decision.threshold
+    mix, _ = cause_mix(explanation.code_contributions)
+    found = find_groups(mix, labels, codes)
     total = max(len(events), 1)
     shares = [g.members.size / total for g in found]
-    tracked = track([g.signature for g in found], shares, previous)
+    tracked = track([g.signature for g in found], shares, start.previous)
 
     progress(f"step 5/{STEPS}: describing {len(found)} groups and simulating their fixes")
     entity = events[spec.entity] if spec.entity and spec.entity in events.columns else None
     context = GroupContext(
-        bundle=bundle, catalogue=explainer.catalogue, table=events, explanation=explanation,
+        bundle=bundle, catalogue=catalogue, table=events, explanation=explanation,
         times=times, reference=reference, entity=entity,
     )
     rows = []
@@ -153,13 +246,13 @@ def run_rootcause(
             "share": shares[position],
             "previous_share": tracked.previous_share[position],
         }
-        row.update(group_row(context, group, finder.strength_))
+        row.update(group_row(context, group, strength))
         rows.append(row)
-    groups = _group_frame(rows, finder.labels_, len(events))
+    groups = _group_frame(rows, labels, len(events))
     group_of = np.full(len(events), UNGROUPED, dtype=object)
     for position, group in enumerate(found):
         group_of[group.members] = tracked.ids[position]
-    event_groups = _event_frame(explanation, group_of, finder.strength_, entity, times)
+    event_groups = _event_frame(explanation, group_of, strength, entity, times)
 
     summary = {
         "created": datetime.now(UTC).isoformat(timespec="seconds"),
@@ -168,24 +261,24 @@ def run_rootcause(
         "selection": "predicted" if options.predicted else "actual",
         "threshold": threshold,
         "window": {
-            "time_column": source.time_column,
+            "time_column": selection.time_column,
             "since": since.isoformat() if since is not None else None,
             "until": until.isoformat() if until is not None else None,
             "first_event": _iso(times.min()),
             "last_event": _iso(times.max()),
         },
         "counts": {
-            "rows_read": len(source.table),
-            "rows_in_window": len(table),
+            "rows_read": selection.rows_read,
+            "rejected": len(rejects),
+            "rows_in_window": selection.rows_in_window,
             "events": len(events),
-            "grouped": int((finder.labels_ >= 0).sum()),
-            "ungrouped": int((finder.labels_ < 0).sum()),
+            "grouped": int((labels >= 0).sum()),
+            "ungrouped": int((labels < 0).sum()),
             "groups": len(found),
             "events_with_warnings": sum(1 for w in explanation.warnings if w),
         },
         "parameters": {
-            "min_cluster_size": finder.min_cluster_size_,
-            "min_samples": finder.min_samples_,
+            **grouping.parameters,
             "leading_share": LEADING_SHARE,
             "match_similarity": MATCH_SIMILARITY,
             "steady_tolerance": {"relative": RELATIVE_TOLERANCE, "absolute": ABSOLUTE_TOLERANCE},
@@ -211,13 +304,14 @@ def run_rootcause(
         groups=groups,
         heatmap=_heatmap(found, tracked.ids, codes),
         weekly=_weekly(event_groups, times),
-        examples=_examples(found, tracked.ids, explanation, finder.strength_),
+        examples=_examples(found, tracked.ids, explanation, strength),
         caution=CAUTION,
     )
     with atomic_directory(out) as staging:
         write_table(escape_frame(groups), staging / GROUPS)
         write_table(escape_frame(event_groups), staging / EVENT_GROUPS)
         htmlreport.write_report(report, staging / REPORT)
+        write_rejects(rejects, staging / REJECTS)
         (staging / SUMMARY).write_text(
             json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n", "utf-8"
         )

@@ -1,0 +1,341 @@
+"""The Dask engine: the batch jobs spread over a Dask cluster, one partition at a time.
+
+Input is read lazily with ``dask.dataframe`` (a Parquet file, a folder of Parquet files, a glob,
+or CSV), so no process ever holds more than a few partitions of rows. Workers receive the
+bundle's *path*, never a model: each worker loads and verifies the bundle once
+(:func:`worker_explainer`) and keeps it, so the path must be readable on every worker (a
+shared volume). Without a scheduler address a :class:`~distributed.LocalCluster` is started for
+the run and closed at its end.
+
+``explain`` streams each partition's output to the file in input order, keeping at most
+:data:`AHEAD` partitions in flight. Rows are explained the same way as by the local engine
+(the same :class:`~service.explain.Explainer`, row by row independent), so contributions agree
+exactly.
+"""
+
+from __future__ import annotations
+
+import csv
+import glob
+import gzip
+import io
+import json
+from collections import Counter, deque
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from functools import lru_cache
+from pathlib import Path
+from typing import Any
+
+import dask
+import dask.dataframe as dd
+import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
+from dask.bytes import read_bytes
+from distributed import Client, LocalCluster
+
+from service.bundle import Bundle, load_bundle
+from service.csvsafe import escape_frame
+from service.errors import CauselineError, DataError
+from service.explain import Explainer
+from service.rejects import empty_rejects, rejects_path, write_rejects
+from service.report import explanation_frame, explanation_records
+from service.storage import atomic_file
+from service.tables import table_format
+
+# A LocalCluster sized for a small machine: two single-threaded worker processes (LightGBM and
+# numba are not re-entrant-friendly with many threads per process, and processes sidestep the
+# GIL). The limit is per worker; Dask spills and then pauses a worker that nears it.
+LOCAL_WORKERS = 2
+LOCAL_MEMORY_LIMIT = "2GiB"
+CONNECT_TIMEOUT = 10  # seconds to reach a given scheduler before giving up
+# Partitions explained ahead of the one being written: enough to keep every worker busy.
+AHEAD = 2 * LOCAL_WORKERS
+CSV_BLOCK = "64MiB"
+
+
+@dataclass(frozen=True)
+class DaskSettings:
+    """Where to run: a scheduler address, or a LocalCluster started for the run."""
+
+    scheduler: str | None = None
+    processes: bool = True
+    workers: int = LOCAL_WORKERS
+    memory_limit: str = LOCAL_MEMORY_LIMIT
+    timeout: float | None = None  # seconds; None: CONNECT_TIMEOUT
+
+
+@contextmanager
+def dask_client(settings: DaskSettings | None = None) -> Iterator[Client]:
+    """A client for the given scheduler, or for a LocalCluster that lives as long as the block."""
+    settings = settings or DaskSettings()
+    if settings.scheduler:
+        timeout = settings.timeout or CONNECT_TIMEOUT
+        try:
+            client = Client(settings.scheduler, timeout=timeout, set_as_default=False)
+        except (OSError, TimeoutError, ValueError) as exc:
+            reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise CauselineError(
+                f"cannot reach the Dask scheduler at {settings.scheduler} "
+                f"within {timeout:g} s ({reason})"
+            ) from None
+        with client:
+            yield client
+        return
+    with LocalCluster(
+        n_workers=settings.workers, threads_per_worker=1, processes=settings.processes,
+        memory_limit=settings.memory_limit, dashboard_address=":0",
+    ) as cluster, Client(cluster, set_as_default=False) as client:
+        yield client
+
+
+def input_kind(path: Path | str) -> str:
+    """``csv`` or ``parquet`` for a file, a glob or a folder (a folder means Parquet)."""
+    text = str(path)
+    if Path(text).is_dir():
+        return "parquet"
+    kind = table_format(Path(text))
+    if kind == "jsonl":
+        raise DataError(f"{path}: the dask engine reads CSV or Parquet; use --engine local")
+    return kind
+
+
+@dataclass(frozen=True)
+class Partitions:
+    """The input as delayed pandas frames in input order, its column names and its kind."""
+
+    parts: list[Any]
+    columns: list[str]
+    kind: str
+
+
+def read_partitions(path: Path | str, text_columns: list[str]) -> Partitions:
+    """The input, lazily, one partition at a time; ids stay text as in the local read.
+
+    A CSV block is parsed by pandas on its own, with the file's header line, exactly as the local
+    reader parses the whole file: each block infers its own column types, so a column that is
+    empty in the first rows (where ``dask.dataframe.read_csv`` would guess a type for all blocks)
+    reads as it does locally. Blocks end at line breaks, so cells must not hold line breaks.
+    """
+    text = str(path)
+    kind = input_kind(text)
+    files = sorted(glob.glob(text)) if not Path(text).exists() else [text]
+    if not files:
+        raise DataError(f"{path}: no such file, folder or matching files")
+    try:
+        if kind == "parquet":
+            # Plain object strings, as pandas reads them locally: the features come out the same.
+            with dask.config.set({"dataframe.convert-string": False}):
+                frame = dd.read_parquet(files if len(files) > 1 else files[0])
+            return Partitions(list(frame.to_delayed(optimize_graph=True)), list(frame.columns),
+                              kind)
+        parts: list[Any] = []
+        columns: list[str] = []
+        for name in files:
+            with open(name, "rb") as handle:
+                header = handle.readline()
+            columns = columns or next(csv.reader([header.decode("utf-8-sig")]))
+            _, blocks = read_bytes(name, delimiter=b"\n", blocksize=CSV_BLOCK, sample=False)
+            for number, block in enumerate(blocks[0]):
+                parts.append(dask.delayed(_parse_csv)(
+                    block, header if number else b"", text_columns, name
+                ))
+    except (ValueError, OSError, UnicodeDecodeError) as exc:
+        raise DataError(f"{path}: cannot be read as {kind}: {_first_line(exc)}") from None
+    return Partitions(parts, columns, kind)
+
+
+def _parse_csv(block: bytes, header: bytes, text_columns: list[str], name: str) -> pd.DataFrame:
+    """On a worker: one CSV block as :func:`service.tables.read_table` reads a whole file."""
+    try:
+        frame = pd.read_csv(
+            io.BytesIO(header + block), dtype={c: "string" for c in text_columns} or None,
+            encoding="utf-8",
+        )
+    except UnicodeDecodeError as exc:
+        raise DataError(f"{name}: not UTF-8 text ({exc.reason})") from None
+    except (ValueError, pd.errors.ParserError) as exc:
+        raise DataError(
+            f"{name}: cannot be read as csv: {_first_line(exc)} (the dask engine reads clean "
+            "files only; --engine local sets broken rows aside)"
+        ) from None
+    return text_as_string(frame, text_columns)
+
+
+@lru_cache(maxsize=4)
+def worker_explainer(bundle_path: str, top_k: int | None = None) -> Explainer:
+    """The bundle at ``bundle_path``, loaded and verified once per worker process and kept."""
+    return Explainer(load_bundle(Path(bundle_path)), top_k=top_k)
+
+
+def text_as_string(table: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
+    """Text columns as pandas strings, as :func:`service.tables.read_table` returns them."""
+    for column in columns:
+        if column in table.columns:
+            table[column] = table[column].astype("string")
+    return table
+
+
+def stream_ordered(
+    client: Client, tasks: list[Any], consume: Callable[[int, Any], None], ahead: int = AHEAD
+) -> None:
+    """Compute ``tasks`` on the cluster and hand results to ``consume`` in order, a few at once.
+
+    Only ``ahead`` results exist at any time, so the client and the workers hold a bounded number
+    of partitions however long the input is.
+    """
+    pending: deque[Any] = deque()
+    position = 0
+    for task in tasks:
+        pending.append(client.compute(task))
+        if len(pending) >= ahead:
+            consume(position, _result(pending.popleft()))
+            position += 1
+    while pending:
+        consume(position, _result(pending.popleft()))
+        position += 1
+
+
+def _result(future: Any) -> Any:
+    try:
+        return future.result()
+    except CauselineError:
+        raise
+    except (ValueError, OSError) as exc:
+        raise DataError(f"unreadable input partition: {_first_line(exc)}") from None
+    finally:
+        future.release()
+
+
+@dataclass
+class ExplainTotals:
+    """What the command prints after an explain run: counts, not rows."""
+
+    rows: int = 0
+    flagged: int = 0
+    warned: int = 0
+    leading: Counter[str] = field(default_factory=Counter)
+
+
+def _explain_part(
+    table: pd.DataFrame, bundle_path: str, top: int | None, all_contributions: bool, kind: str
+) -> tuple[Any, int, int, int, Counter[str]]:
+    """On a worker: one partition's output (a frame, or JSON lines as text) and its counts."""
+    explainer = worker_explainer(bundle_path, top)
+    bundle = explainer.bundle
+    table = text_as_string(table.reset_index(drop=True), [bundle.spec.id])
+    explanation = explainer.explain(table)
+    threshold = bundle.manifest.decision.threshold
+    names = bundle.spec.feature_names
+    if kind == "jsonl":
+        records = explanation_records(explanation, threshold, names, all_contributions)
+        out: Any = "".join(json.dumps(r, ensure_ascii=False) + "\n" for r in records)
+    else:
+        frame = explanation_frame(
+            explanation, threshold, names, explainer.top_k, all_contributions
+        )
+        out = escape_frame(frame) if kind == "csv" else frame
+    leading = Counter(
+        reasons[0].code
+        for reasons, flagged in zip(explanation.reasons, explanation.decision, strict=True)
+        if reasons and flagged
+    )
+    warned = sum(1 for w in explanation.warnings if w)
+    return out, len(explanation.ids), int(explanation.decision.sum()), warned, leading
+
+
+def explain_partitions(
+    bundle: Bundle,
+    input_path: Path | str,
+    out: Path,
+    top: int | None = None,
+    all_contributions: bool = False,
+    settings: DaskSettings | None = None,
+) -> ExplainTotals:
+    """``causeline explain --engine dask``: the same output file, written partition by partition.
+
+    The input is read by Dask, which has no lenient reader: a broken line stops the run with one
+    line (the local engine sets such rows aside). The rejects file is still written, empty, so
+    both engines leave the same files.
+    """
+    out = Path(out)
+    kind = table_format(out)
+    source = read_partitions(input_path, [bundle.spec.id])
+    bundle_path = str(Path(bundle.path).resolve())
+    totals = ExplainTotals()
+    with dask_client(settings) as client, atomic_file(out) as temporary:
+        writer = _PartWriter(temporary, kind, out.name.lower().endswith(".gz"))
+        try:
+            tasks = [
+                dask.delayed(_explain_part)(part, bundle_path, top, all_contributions, kind)
+                for part in source.parts
+            ]
+
+            def consume(_: int, result: tuple[Any, int, int, int, Counter[str]]) -> None:
+                part, rows, flagged, warned, leading = result
+                writer.write(part)
+                totals.rows += rows
+                totals.flagged += flagged
+                totals.warned += warned
+                totals.leading.update(leading)
+
+            stream_ordered(client, tasks, consume)
+        finally:
+            writer.close()
+    write_rejects(empty_rejects(source.columns), rejects_path(out))
+    return totals
+
+
+class _PartWriter:
+    """Appends partitions to one CSV, JSON-lines or Parquet file."""
+
+    def __init__(self, path: Path, kind: str, gz: bool) -> None:
+        self.kind = kind
+        self.first = True
+        self.parquet: pq.ParquetWriter | None = None
+        self.schema: pa.Schema | None = None
+        self.path = path
+        self.handle: Any = None
+        if kind != "parquet":
+            opener = gzip.open if gz else open
+            self.handle = opener(path, "wt", encoding="utf-8", newline="")
+
+    def write(self, part: Any) -> None:
+        if self.kind == "jsonl":
+            self.handle.write(part)
+        elif self.kind == "csv":
+            part.to_csv(self.handle, index=False, header=self.first)
+        else:
+            if self.parquet is None:
+                self.schema = _typed_schema(pa.Schema.from_pandas(part, preserve_index=False))
+                self.parquet = pq.ParquetWriter(self.path, self.schema)
+            table = pa.Table.from_pandas(part, schema=self.schema, preserve_index=False)
+            self.parquet.write_table(table)
+        self.first = False
+
+    def close(self) -> None:
+        if self.handle is not None:
+            self.handle.close()
+        if self.parquet is not None:
+            self.parquet.close()
+        elif self.kind == "parquet":
+            # No partitions at all: still leave a readable (empty) file.
+            pq.write_table(pa.table({}), self.path)
+
+
+def _typed_schema(schema: pa.Schema) -> pa.Schema:
+    """Columns that are all empty in the first partition get the type later ones will have."""
+    fields = []
+    for item in schema:
+        if pa.types.is_null(item.type):
+            kind = pa.float64() if item.name.endswith("_contribution") else pa.string()
+            item = item.with_type(kind)
+        fields.append(item)
+    return pa.schema(fields, metadata=schema.metadata)
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
