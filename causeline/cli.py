@@ -49,9 +49,14 @@ def _parser() -> argparse.ArgumentParser:
 
     explain = commands.add_parser("explain", help="score events and attach reason codes")
     explain.add_argument("--bundle", required=True, type=Path)
-    explain.add_argument("--input", required=True, type=Path, help="CSV, JSONL or Parquet")
+    explain.add_argument("--input", type=Path, help="CSV, JSONL or Parquet")
     explain.add_argument("--out", required=True, type=Path, help="CSV, JSONL or Parquet")
     explain.add_argument("--top", type=int, default=None, help="reason codes per event")
+    _raw_arguments(explain, "instead of --input, for a bundle built from timelines: ")
+    explain.add_argument(
+        "--latest", action="store_true",
+        help="with raw logs: only each entity's latest snapshot (score the fleet now)",
+    )
     explain.add_argument(
         "--all-contributions",
         action="store_true",
@@ -96,8 +101,13 @@ def _raw_arguments(parser: argparse.ArgumentParser, prefix: str) -> None:
     parser.add_argument("--attributes", type=Path, help=prefix + "static attributes per entity")
 
 
+def _has_raw_logs(args: argparse.Namespace) -> bool:
+    logs = ("readings", "events", "actions", "attributes")
+    return any(getattr(args, name, None) is not None for name in logs)
+
+
 def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
-    from training.build import RawPaths
+    from service.timeline import RawPaths
 
     if args.readings is None:
         raise CauselineError("give --readings (and --events, maybe --actions, --attributes)")
@@ -125,7 +135,7 @@ def _build(args: argparse.Namespace) -> int:
 def _train(args: argparse.Namespace) -> int:
     from training.pipeline import train, train_timeline
 
-    raw = any(getattr(args, k) is not None for k in ("readings", "events", "actions", "attributes"))
+    raw = _has_raw_logs(args)
     if (args.data is None) == (not raw):
         raise CauselineError("give either --data or the raw logs (--readings, --events, ...)")
     if raw:
@@ -162,10 +172,23 @@ def _explain(args: argparse.Namespace) -> int:
     if _use_dask(args):
         return _explain_dask(args, bundle)
     kind = table_format(args.out)
-    # Unreadable rows go to a rejects file; rows with a bad cell are scored with it as missing
-    # and a warning (dropping them could hide an alert).
-    read = read_lenient(args.input, text_columns=[bundle.spec.id])
-    table = read.table
+    if _has_raw_logs(args) == (args.input is not None):
+        raise CauselineError("give either --input or the raw logs (--readings, --events, ...)")
+    if _has_raw_logs(args):
+        # The same build as `causeline build`, so scores match training's features exactly.
+        import numpy as np
+
+        from service.rejects import Lenient, empty_rejects
+        from service.timeline import read_inputs, snapshot_features
+
+        inputs = read_inputs(bundle.spec, _raw_paths(args))
+        table = snapshot_features(bundle.spec, inputs, latest=args.latest)
+        read = Lenient(table, np.arange(1, len(table) + 1), empty_rejects(table.columns))
+    else:
+        # Unreadable rows go to a rejects file; rows with a bad cell are scored with it as
+        # missing and a warning (dropping them could hide an alert).
+        read = read_lenient(args.input, text_columns=[bundle.spec.id])
+        table = read.table
     explainer = Explainer(bundle, top_k=args.top)
     explanation = explainer.explain(table)
     threshold = bundle.manifest.decision.threshold

@@ -9,14 +9,18 @@ timestamp <= t; ``check_no_leakage`` probes any builder for that. Label rules ar
 
 from __future__ import annotations
 
+import hashlib
 from collections.abc import Callable
 from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from service.bundle import sha256_file
 from service.errors import DataError
 from service.spec import DatasetSpec, TimelineSpec, span_amount
+from service.tables import read_table
 from service.timeline_labels import CENSORED, DOWN, NEGATIVE, POSITIVE, EventLog, label_status
 from service.timeline_windows import Prefix, last_valid_index, rank
 
@@ -76,6 +80,43 @@ class _Clock:
             whole = np.all(times == np.round(times))
             return pd.Series(times.astype(np.int64) if whole else times)
         return pd.Series(times.view("datetime64[ns]"))
+
+
+@dataclass(frozen=True)
+class RawPaths:
+    """The raw logs on disk; only the readings are always needed."""
+
+    readings: Path
+    events: Path | None = None
+    actions: Path | None = None
+    attributes: Path | None = None
+
+    def fingerprint(self) -> str:
+        """One sha256 over the files' own checksums, in a fixed order."""
+        parts = [sha256_file(p) if p else "-" for p in
+                 (self.readings, self.events, self.actions, self.attributes)]
+        return hashlib.sha256("\n".join(parts).encode()).hexdigest()
+
+
+def read_inputs(dataset: DatasetSpec, paths: RawPaths) -> TimelineInputs:
+    """Read the raw logs, keeping entity columns as text."""
+    spec = _timeline(dataset)
+    if spec.actions is not None and paths.actions is None:
+        raise DataError("the config has an actions section; give the maintenance log (--actions)")
+    if spec.attributes is not None and paths.attributes is None:
+        raise DataError("the config has an attributes section; give them (--attributes)")
+
+    def read(path: Path | None, entity: str | None) -> pd.DataFrame | None:
+        if path is None:
+            return None
+        return read_table(path, text_columns=[entity] if entity else [])
+
+    return TimelineInputs(
+        readings=read(paths.readings, spec.readings.entity),  # type: ignore[arg-type]
+        failures=read(paths.events, spec.failures.entity),
+        actions=read(paths.actions, spec.actions.entity if spec.actions else None),
+        attributes=read(paths.attributes, spec.attributes.entity if spec.attributes else None),
+    )
 
 
 def feature_names(spec: TimelineSpec) -> list[str]:
@@ -197,6 +238,18 @@ def entity_features(
     spec = _timeline(dataset)
     built = build_snapshots(spec, inputs, at=LATEST if at is None else pd.Series([at]))
     return _name_columns(dataset, built).drop(columns=[STATUS])
+
+
+def snapshot_features(
+    dataset: DatasetSpec, inputs: TimelineInputs, latest: bool = False
+) -> pd.DataFrame:
+    """Every snapshot the cadence gives (or each entity's latest), named as the spec says, for
+    scoring: down and censored snapshots too, since scoring needs no label."""
+    built = _name_columns(dataset, build_snapshots(_timeline(dataset), inputs))
+    if latest:
+        entity = dataset.entity or _timeline(dataset).readings.entity
+        built = built.groupby(entity, sort=False).tail(1).reset_index(drop=True)
+    return built.drop(columns=[STATUS])
 
 
 def check_no_leakage(
