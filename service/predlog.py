@@ -83,11 +83,15 @@ def is_prediction_log(path: Path) -> bool:
     return path.is_dir() and any(path.glob(SEGMENT_GLOB))
 
 
-def read_prediction_log(folder: Path) -> pd.DataFrame:
+def read_prediction_log(
+    folder: Path, rejects: list[dict[str, Any]] | None = None
+) -> pd.DataFrame:
     """All logged events as one table: the raw ``event`` fields plus the log's own columns.
 
     The log's columns are prefixed ``log_`` (``log_probability``, ...) so they never collide with
-    an event's own fields. A cut-off last line (a crash mid-write) is skipped.
+    an event's own fields. A cut-off last line (a crash mid-write) is skipped. A line that is not
+    an event stops the read, unless ``rejects`` is given: then it is appended there (``row`` as
+    ``segment:line``, ``reason``, ``unparsed``) and the read goes on.
     """
     folder = Path(folder)
     segments = sorted(folder.glob(SEGMENT_GLOB))
@@ -102,10 +106,15 @@ def read_prediction_log(folder: Path) -> pd.DataFrame:
                 try:
                     record = json.loads(line)
                 except json.JSONDecodeError:
-                    raise DataError(f"{segment}: line {number} is not JSON") from None
+                    record = None
                 event = record.get("event") if isinstance(record, dict) else None
                 if not isinstance(event, dict):
-                    raise DataError(f"{segment}: line {number} has no event object")
+                    reason = "not JSON" if record is None else "no event object"
+                    if rejects is None:
+                        raise DataError(f"{segment}: line {number}: {reason}")
+                    rejects.append({"row": f"{segment.name}:{number}", "reason": reason,
+                                    "unparsed": line.rstrip("\n")[:2000]})
+                    continue
                 row = dict(event)
                 for key in META_COLUMNS:
                     row[f"log_{key}"] = record.get(key)

@@ -46,14 +46,16 @@ def read_events(bundle: Bundle, path: Path) -> EventInput:
     path = Path(path)
     spec = bundle.spec
     if is_prediction_log(path):
-        table = read_prediction_log(path)
+        bad: list[dict[str, object]] = []
+        table = read_prediction_log(path, rejects=bad)
         # Events sent without their own id are known by the id the log gave them.
         id_column = spec.id if spec.id in table.columns else LOG_ID
         for column in (id_column, spec.entity):
             if column is not None and column in table.columns:
                 table[column] = table[column].astype("string")
         rows = np.arange(1, len(table) + 1)
-        return EventInput(table, id_column, LOG_TIME, True, rows, empty_rejects(table.columns))
+        rejects = pd.DataFrame(bad) if bad else empty_rejects(table.columns)
+        return EventInput(table, id_column, LOG_TIME, True, rows, rejects)
     if path.is_dir():
         raise DataError(f"{path}: a folder without prediction-log segments")
     text = [c for c in (spec.id, spec.entity) if c is not None]

@@ -184,3 +184,20 @@ def test_cli_errors_are_one_line(demo_parquet, bundle, tmp_path, capsys) -> None
         assert main([*base, *extra]) == 2
         lines = capsys.readouterr().err.strip().splitlines()
         assert len(lines) == 1 and word in lines[0], lines
+
+
+def test_broken_prediction_log_lines_are_rejected_not_fatal(bundle, fleet, tmp_path) -> None:  # type: ignore[no-untyped-def]
+    rows = _log(bundle, fleet, tmp_path / "log")
+    segment = sorted((tmp_path / "log").glob("segment-*.jsonl"))[0]
+    with open(segment, "a", encoding="utf-8") as handle:
+        handle.write("{not json\n")
+        handle.write('{"id": "x", "probability": 0.5}\n')
+    out = tmp_path / "out"
+    run_rootcause(bundle, tmp_path / "log", out, RootCauseOptions(predicted=True))
+    rejects = pd.read_csv(out / "rejects.csv")
+    assert sorted(rejects["reason"]) == ["no event object", "not JSON"]
+    assert all(cell.startswith(segment.name + ":") for cell in rejects["row"])
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["counts"]["rejected"] == 2
+    events = pd.read_csv(out / EVENT_GROUPS)
+    assert len(events) == int(Explainer(bundle).explain(rows).decision.sum())
