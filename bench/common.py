@@ -19,6 +19,7 @@ def demo_bundle(folder: Path | None = None, cases: int = 320, days: int = 365) -
     from training.pipeline import train
 
     folder = Path(folder or tempfile.mkdtemp(prefix="causeline-bench-"))
+    folder.mkdir(parents=True, exist_ok=True)
     data = folder / "cases.parquet"
     generate(cases=cases, days=days).to_parquet(data, index=False)
     train(ROOT / "fixtures" / "demo" / "config.yaml", data, folder / "bundle")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import runpy
 import sys
+import traceback
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
@@ -22,6 +23,9 @@ def main() -> int:
         except SystemExit as exc:  # a benchmark's own exit must not end the others
             if exc.code not in (None, 0):
                 failed.append(name)
+        except Exception:  # report it, and still run the rest
+            traceback.print_exc()
+            failed.append(name)
     if failed:
         print(f"# failed: {', '.join(failed)}", flush=True)
     return 1 if failed else 0
