@@ -21,6 +21,9 @@ from typing import Any
 from service.metrics import Metrics
 from service.predlog import PredictionLogWriter
 
+LINGER_SECONDS = 0.1
+WAKE_RECORDS = 1024
+
 logger = logging.getLogger("causeline.service")
 
 
@@ -63,7 +66,10 @@ class BackgroundLog:
             self._queue.append(records)
             self._pending += len(records)
             self.metrics.log_queue.set(self._pending)
-            self._condition.notify()
+            # Waking the writer for every request makes it fight the event loop for the GIL;
+            # it drains on its own every LINGER_SECONDS, or now when the queue grows large.
+            if self._pending >= WAKE_RECORDS:
+                self._condition.notify()
             return True
 
     def stop(self, timeout: float = 10.0) -> None:
@@ -78,8 +84,8 @@ class BackgroundLog:
         last_sync = time.monotonic()
         while True:
             with self._condition:
-                if not self._queue and not self._stopping:
-                    self._condition.wait(self.fsync_seconds)
+                if not self._stopping:
+                    self._condition.wait(min(self.fsync_seconds, LINGER_SECONDS))
                 batches = list(self._queue)
                 self._queue.clear()
                 self._pending = 0
