@@ -43,20 +43,14 @@ from service.dask_engine import (
 from service.errors import DataError
 from service.explain import Explanation
 from service.features import FeatureMatrix, RowProblem
-from service.model import probability
 from service.predlog import is_prediction_log
 from service.rejects import (
     REASON,
     ROW,
-    add_rejects,
-    cell_reasons,
     empty_rejects,
-    keep_mask,
-    label_reasons,
-    merge_reasons,
 )
 from service.rootcause import GroupFinder, cause_mix, default_min_cluster_size
-from service.rootcause_input import EventInput, event_labels, event_times, window_mask
+from service.rootcause_input import EventInput, event_times, screen_rows, window_mask
 from service.rootcause_run import (
     STEPS,
     Grouping,
@@ -112,22 +106,11 @@ def _select_part(
     times = event_times(source)
     window = window_mask(times, start.since, start.until, spec.time) if rows else np.ones(0, bool)
     table, times = table[window], times[window]
-    features = bundle.builder.transform(table)
-    bad = cell_reasons(features.problems)
-    if not options.predicted:
-        if spec.target not in table.columns:
-            raise DataError(
-                f"no label column {spec.target!r}; pass --predicted to group rows scored at or "
-                "above the threshold"
-            )
-        bad = merge_reasons(bad, label_reasons(table[spec.target], spec.target))
-    rejects = add_rejects(empty_rejects(table.columns), table, np.flatnonzero(window), bad)
-    keep = keep_mask(len(table), bad)
-    table, times, reference = table[keep], times[keep], features.values[keep]
-    if options.predicted:
-        selected = probability(bundle, reference) >= bundle.manifest.decision.threshold
-    else:
-        selected = event_labels(table[spec.target], spec.target)
+    screened = screen_rows(
+        bundle, table, np.flatnonzero(window), empty_rejects(table.columns), options.predicted
+    )
+    rejects, reference, selected = screened.rejects, screened.reference, screened.selected
+    table, times = table[screened.keep], times[screened.keep]
     events = table[selected].reset_index(drop=True)
     rng = np.random.default_rng([SEED, index])
     reference_keys = rng.random(len(reference))

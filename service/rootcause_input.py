@@ -16,8 +16,17 @@ import pandas as pd
 
 from service.bundle import Bundle
 from service.errors import DataError
+from service.model import probability
 from service.predlog import is_prediction_log, read_prediction_log
-from service.rejects import empty_rejects, read_lenient
+from service.rejects import (
+    add_rejects,
+    cell_reasons,
+    empty_rejects,
+    keep_mask,
+    label_reasons,
+    merge_reasons,
+    read_lenient,
+)
 from service.tables import binary_column
 
 LOG_TIME = "log_logged_at"
@@ -107,3 +116,46 @@ def window_mask(
     if until is not None:
         keep &= (times < until).fillna(False).to_numpy(dtype=bool)
     return keep
+
+
+@dataclass(frozen=True)
+class Screened:
+    """Which rows stay (``keep``), their features, which of those are events, and the rejects."""
+
+    keep: np.ndarray
+    reference: np.ndarray
+    selected: np.ndarray
+    rejects: pd.DataFrame
+
+
+def screen_rows(
+    bundle: Bundle,
+    table: pd.DataFrame,
+    source_rows: np.ndarray,
+    rejects: pd.DataFrame,
+    predicted: bool,
+    where: str = "",
+) -> Screened:
+    """Set aside rows with a bad cell or label, then pick the events among the rest.
+
+    A group built on guessed values would mislead, so such rows go to the rejects. Events are
+    the rows labelled as events, or with ``predicted`` those scored at or above the threshold.
+    """
+    spec = bundle.spec
+    features = bundle.builder.transform(table)
+    bad = cell_reasons(features.problems)
+    if not predicted:
+        if spec.target not in table.columns:
+            raise DataError(
+                f"{where}no label column {spec.target!r}; pass --predicted to group rows "
+                "scored at or above the threshold"
+            )
+        bad = merge_reasons(bad, label_reasons(table[spec.target], spec.target))
+    rejects = add_rejects(rejects, table, source_rows, bad)
+    keep = keep_mask(len(table), bad)
+    reference = features.values[keep]
+    if predicted:
+        selected = probability(bundle, reference) >= bundle.manifest.decision.threshold
+    else:
+        selected = event_labels(table[keep][spec.target], spec.target)
+    return Screened(keep, reference, np.asarray(selected, dtype=bool), rejects)

@@ -20,15 +20,9 @@ from service.bundle import Bundle
 from service.csvsafe import escape_frame
 from service.errors import DataError
 from service.explain import Explainer, Explanation
-from service.model import probability
 from service.predlog import is_prediction_log
 from service.reasons import ReasonCatalogue
 from service.rejects import (
-    add_rejects,
-    cell_reasons,
-    keep_mask,
-    label_reasons,
-    merge_reasons,
     write_rejects,
 )
 from service.rootcause import (
@@ -41,10 +35,10 @@ from service.rootcause import (
     group_row,
 )
 from service.rootcause_input import (
-    event_labels,
     event_times,
     parse_time,
     read_events,
+    screen_rows,
     window_mask,
 )
 from service.storage import atomic_directory
@@ -149,31 +143,18 @@ def run_rootcause(
         )
     progress(f"step 1/{STEPS}: reading {events_path}")
     source = read_events(bundle, events_path)
-    spec = bundle.spec
     times = event_times(source)
     window = window_mask(times, since, until, source.time_column)
     table = source.table[window]
     times = times.loc[table.index]
 
     progress(f"step 2/{STEPS}: selecting events among {len(table):,} rows")
-    features = bundle.builder.transform(table)
-    # A row with a bad cell or label is set aside: a group built on guessed values would mislead.
-    bad = cell_reasons(features.problems)
-    if not options.predicted:
-        if spec.target not in table.columns:
-            raise DataError(
-                f"{events_path}: no label column {spec.target!r}; pass --predicted to group "
-                "rows scored at or above the threshold"
-            )
-        bad = merge_reasons(bad, label_reasons(table[spec.target], spec.target))
-    rejects = add_rejects(source.rejects, table, source.rows[window], bad)
-    keep = keep_mask(len(table), bad)
-    table, times, reference = table[keep], times[keep], features.values[keep]
-    threshold = bundle.manifest.decision.threshold
-    if options.predicted:
-        selected = probability(bundle, reference) >= threshold
-    else:
-        selected = event_labels(table[spec.target], spec.target)
+    screened = screen_rows(
+        bundle, table, source.rows[window], source.rejects, options.predicted,
+        f"{events_path}: ",
+    )
+    rejects, reference, selected = screened.rejects, screened.reference, screened.selected
+    table, times = table[screened.keep], times[screened.keep]
     events = table[selected].reset_index(drop=True)
     times = times[selected].reset_index(drop=True)
 
