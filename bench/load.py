@@ -20,13 +20,20 @@ if str(ROOT) not in sys.path:
 
 import argparse  # noqa: E402
 import asyncio  # noqa: E402
-import os  # noqa: E402
 import subprocess  # noqa: E402
 import tempfile  # noqa: E402
 import threading  # noqa: E402
 
 from bench.common import demo_bundle, report  # noqa: E402
-from bench.serving import Run, _events, _free_port, _load, _request, _wait_ready  # noqa: E402
+from bench.serving import (  # noqa: E402
+    Run,
+    _events,
+    _free_port,
+    _load,
+    _request,
+    _wait_ready,
+    server_env,
+)
 
 # Growth allowed from the end of the warm-up to the end of the run: 10 % of the warmed-up RSS or
 # 32 MiB, whichever is larger (allocator slack and the bounded log queue; a leak grows with load).
@@ -104,11 +111,8 @@ def main(argv: list[str] | None = None) -> int:
     bundle = args.bundle or demo_bundle(scratch / "demo")
     requests = [_request({"events": [event]}) for event in _events(bundle)]
     port = _free_port()
-    env = {key: value for key, value in os.environ.items() if not key.startswith("CAUSELINE_")}
-    env.update({"CAUSELINE_ACCESS_LOG": "0", "CAUSELINE_LOG_LEVEL": "warning",
-                "CAUSELINE_PREDICTION_LOG": str(scratch / "predictions"),
-                # Loopback only, so the reload endpoint may go without keys here.
-                "CAUSELINE_ADMIN_WITHOUT_KEYS": "1", "PYTHONPATH": str(ROOT)})
+    # Loopback only, so the reload endpoint may go without keys here.
+    env = server_env(scratch, CAUSELINE_ADMIN_WITHOUT_KEYS="1")
     server = subprocess.Popen(
         [sys.executable, "-m", "causeline", "serve", "--bundle", str(bundle), "--port",
          str(port)], cwd=ROOT, env=env, stdout=subprocess.DEVNULL,

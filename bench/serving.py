@@ -129,6 +129,15 @@ def _pin(processes: dict[str, subprocess.Popen[bytes]]) -> str:
     return str(cpus[0])
 
 
+def server_env(scratch: Path, **extra: str) -> dict[str, str]:
+    """The environment a benchmarked server runs with: no settings from the caller's shell."""
+    env = {key: value for key, value in os.environ.items() if not key.startswith("CAUSELINE_")}
+    env.update({"CAUSELINE_ACCESS_LOG": "0", "CAUSELINE_LOG_LEVEL": "warning",
+                "CAUSELINE_PREDICTION_LOG": str(scratch / "predictions"),
+                "PYTHONPATH": str(ROOT), **extra})
+    return env
+
+
 def _free_port() -> int:
     with socket.socket() as probe:
         probe.bind(("127.0.0.1", 0))
@@ -180,11 +189,7 @@ def main(argv: list[str] | None = None) -> int:
     scratch = Path(tempfile.mkdtemp(prefix="causeline-http-bench-"))
     bundle = args.bundle or demo_bundle(scratch / "demo")
     requests = [_request({"events": [event]}) for event in _events(bundle)]
-    env = {key: value for key, value in os.environ.items()
-           if not key.startswith("CAUSELINE_")}
-    env.update({"CAUSELINE_ACCESS_LOG": "0", "CAUSELINE_LOG_LEVEL": "warning",
-                "CAUSELINE_PREDICTION_LOG": str(scratch / "predictions"),
-                "PYTHONPATH": str(ROOT)})
+    env = server_env(scratch)
     ports = {"bare": _free_port(), "score": _free_port()}
     commands = {
         "bare": [sys.executable, "-m", "uvicorn", "bench.serving:bare_app", "--factory",

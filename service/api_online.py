@@ -13,7 +13,7 @@ import pandas as pd
 
 from service.api_models import TimelineScoreRequest
 from service.bundle import Bundle
-from service.errors import CauselineError
+from service.errors import CauselineError, first_line
 from service.problems import FieldError, Problem
 from service.timeline import TimelineInputs, entity_features
 
@@ -36,7 +36,7 @@ def online_event(bundle: Bundle, payload: TimelineScoreRequest) -> dict[str, Any
     try:
         row = entity_features(spec, inputs, at=payload.at)
     except (CauselineError, KeyError, ValueError, TypeError) as exc:
-        message = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        message = first_line(exc)
         raise Problem(
             422, f"the logs cannot be built into a snapshot: {message}", "invalid-timeline",
             [FieldError(field="readings", message=message)],

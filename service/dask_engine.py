@@ -38,12 +38,12 @@ from distributed import Client, LocalCluster
 
 from service.bundle import Bundle, load_bundle
 from service.csvsafe import escape_frame
-from service.errors import CauselineError, DataError
+from service.errors import CauselineError, DataError, first_line
 from service.explain import Explainer
 from service.rejects import empty_rejects, rejects_path, write_rejects
 from service.report import explanation_frame, explanation_records
 from service.storage import atomic_file
-from service.tables import table_format
+from service.tables import as_text, table_format
 
 # A LocalCluster sized for a small machine: two single-threaded worker processes (LightGBM and
 # numba are not re-entrant-friendly with many threads per process, and processes sidestep the
@@ -76,7 +76,7 @@ def dask_client(settings: DaskSettings | None = None) -> Iterator[Client]:
         try:
             client = Client(settings.scheduler, timeout=timeout, set_as_default=False)
         except (OSError, TimeoutError, ValueError) as exc:
-            reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            reason = first_line(exc)
             raise CauselineError(
                 f"cannot reach the Dask scheduler at {settings.scheduler} "
                 f"within {timeout:g} s ({reason})"
@@ -143,7 +143,7 @@ def read_partitions(path: Path | str, text_columns: list[str]) -> Partitions:
                     block, header if number else b"", text_columns, name
                 ))
     except (ValueError, OSError, UnicodeDecodeError) as exc:
-        raise DataError(f"{path}: cannot be read as {kind}: {_first_line(exc)}") from None
+        raise DataError(f"{path}: cannot be read as {kind}: {first_line(exc)}") from None
     return Partitions(parts, columns, kind)
 
 
@@ -158,24 +158,16 @@ def _parse_csv(block: bytes, header: bytes, text_columns: list[str], name: str) 
         raise DataError(f"{name}: not UTF-8 text ({exc.reason})") from None
     except (ValueError, pd.errors.ParserError) as exc:
         raise DataError(
-            f"{name}: cannot be read as csv: {_first_line(exc)} (the dask engine reads clean "
+            f"{name}: cannot be read as csv: {first_line(exc)} (the dask engine reads clean "
             "files only; --engine local sets broken rows aside)"
         ) from None
-    return text_as_string(frame, text_columns)
+    return as_text(frame, text_columns)
 
 
 @lru_cache(maxsize=4)
 def worker_explainer(bundle_path: str, top_k: int | None = None) -> Explainer:
     """The bundle at ``bundle_path``, loaded and verified once per worker process and kept."""
     return Explainer(load_bundle(Path(bundle_path)), top_k=top_k)
-
-
-def text_as_string(table: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
-    """Text columns as pandas strings, as :func:`service.tables.read_table` returns them."""
-    for column in columns:
-        if column in table.columns:
-            table[column] = table[column].astype("string")
-    return table
 
 
 def stream_ordered(
@@ -204,7 +196,7 @@ def _result(future: Any) -> Any:
     except CauselineError:
         raise
     except (ValueError, OSError) as exc:
-        raise DataError(f"unreadable input partition: {_first_line(exc)}") from None
+        raise DataError(f"unreadable input partition: {first_line(exc)}") from None
     finally:
         future.release()
 
@@ -225,7 +217,7 @@ def _explain_part(
     """On a worker: one partition's output (a frame, or JSON lines as text) and its counts."""
     explainer = worker_explainer(bundle_path, top)
     bundle = explainer.bundle
-    table = text_as_string(table.reset_index(drop=True), [bundle.spec.id])
+    table = as_text(table.reset_index(drop=True), [bundle.spec.id])
     explanation = explainer.explain(table)
     threshold = bundle.manifest.decision.threshold
     names = bundle.spec.feature_names
@@ -334,8 +326,3 @@ def _typed_schema(schema: pa.Schema) -> pa.Schema:
             item = item.with_type(kind)
         fields.append(item)
     return pa.schema(fields, metadata=schema.metadata)
-
-
-def _first_line(exc: BaseException) -> str:
-    text = str(exc).strip()
-    return text.splitlines()[0] if text else type(exc).__name__

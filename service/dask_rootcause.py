@@ -37,7 +37,6 @@ from service.dask_engine import (
     dask_client,
     read_partitions,
     stream_ordered,
-    text_as_string,
     worker_explainer,
 )
 from service.errors import DataError
@@ -62,6 +61,7 @@ from service.rootcause_run import (
     finish_rootcause,
     start_rootcause,
 )
+from service.tables import as_text
 from service.treeshap import Contributions
 
 # HDBSCAN's fit grows faster than linearly with points; on the demo 13,000 events fit in about
@@ -100,7 +100,7 @@ def _select_part(
     explainer = worker_explainer(bundle_path)
     bundle = explainer.bundle
     spec = bundle.spec
-    table = text_as_string(table.reset_index(drop=True), [c for c in (spec.id, spec.entity) if c])
+    table = as_text(table.reset_index(drop=True), [c for c in (spec.id, spec.entity) if c])
     rows = len(table)
     source = EventInput(table, spec.id, spec.time, False, np.arange(rows), empty_rejects())
     times = event_times(source)

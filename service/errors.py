@@ -19,3 +19,9 @@ class DataError(CauselineError):
 
 class BundleError(CauselineError):
     """A bundle is missing, incomplete, tampered with or of an unknown schema."""
+
+
+def first_line(exc: BaseException) -> str:
+    """An exception's message cut to its first line (its type name when it has none)."""
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__

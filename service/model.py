@@ -5,11 +5,12 @@ from __future__ import annotations
 import numpy as np
 
 from service.bundle import Bundle, Calibration
+from service.treeshap import SMALL_BATCH
 
 
 def raw_score(bundle: Bundle, features: np.ndarray) -> np.ndarray:
     """The boosted trees' output in log-odds, before calibration."""
-    threads = 1 if features.shape[0] <= 64 else 0
+    threads = 1 if features.shape[0] <= SMALL_BATCH else 0
     return np.asarray(
         bundle.booster.predict(features, raw_score=True, num_threads=threads), dtype=np.float64
     )

@@ -27,7 +27,14 @@ import pandas as pd
 from service.csvsafe import escape_frame
 from service.errors import DataError
 from service.features import RowProblem
-from service.tables import SUFFIXES, binary_column, read_table, table_format, write_table
+from service.tables import (
+    SUFFIXES,
+    binary_column,
+    parse_table,
+    read_table,
+    table_format,
+    write_table,
+)
 
 ROW = "row"
 REASON = "reason"
@@ -231,21 +238,9 @@ def _scan_jsonl(text: str) -> _Scan:
 
 def _parse(kind: str, text: str, text_columns: list[str], path: Path) -> pd.DataFrame:
     """The readable rows, parsed with the same reader and types as a clean file."""
-    dtype = {column: "string" for column in text_columns} or None
-    try:
-        if kind == "csv":
-            frame = pd.read_csv(io.StringIO(text), dtype=dtype)
-        elif text:
-            frame = pd.read_json(io.StringIO(text), lines=True, dtype=dtype)
-        else:
-            frame = pd.DataFrame()
-    except (ValueError, pd.errors.ParserError) as exc:
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise DataError(f"{path}: cannot be read as {kind}: {first}") from None
-    for column in text_columns:
-        if column in frame.columns:
-            frame[column] = frame[column].astype("string")
-    return frame
+    if kind != "csv" and not text:
+        return pd.DataFrame()
+    return parse_table(kind, io.StringIO(text), text_columns, path)
 
 
 def _reject_frame(

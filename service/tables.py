@@ -2,13 +2,14 @@
 
 from __future__ import annotations
 
+import io
 from collections.abc import Iterable
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from service.errors import DataError
+from service.errors import DataError, first_line
 from service.storage import atomic_file
 
 _CSV = (".csv", ".csv.gz", ".txt")
@@ -32,20 +33,31 @@ def read_table(path: Path, text_columns: Iterable[str] = ()) -> pd.DataFrame:
     kind = table_format(path)
     if not path.is_file():
         raise DataError(f"{path}: no such file")
+    return parse_table(kind, path, text_columns, path)
+
+
+def parse_table(
+    kind: str, source: Path | io.StringIO, text_columns: Iterable[str], where: Path
+) -> pd.DataFrame:
+    """Parse a file or an in-memory text as ``kind``; errors name ``where`` in one line."""
     text = {column: "string" for column in text_columns}
     try:
         if kind == "csv":
-            frame = pd.read_csv(path, dtype=text or None, encoding="utf-8")
+            frame = pd.read_csv(source, dtype=text or None, encoding="utf-8")
         elif kind == "jsonl":
-            frame = pd.read_json(path, lines=True, dtype=text or None)
+            frame = pd.read_json(source, lines=True, dtype=text or None)
         else:
-            frame = pd.read_parquet(path)
+            frame = pd.read_parquet(source)
     except UnicodeDecodeError as exc:
-        raise DataError(f"{path}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
+        raise DataError(f"{where}: not UTF-8 text ({exc.reason} at byte {exc.start})") from None
     except (ValueError, OSError, pd.errors.ParserError) as exc:
-        first_line = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise DataError(f"{path}: cannot be read as {kind}: {first_line}") from None
-    for column in text:
+        raise DataError(f"{where}: cannot be read as {kind}: {first_line(exc)}") from None
+    return as_text(frame, text)
+
+
+def as_text(frame: pd.DataFrame, columns: Iterable[str]) -> pd.DataFrame:
+    """``columns`` (ids, entities) as pandas strings, never as numbers."""
+    for column in columns:
         if column in frame.columns:
             frame[column] = frame[column].astype("string")
     return frame
