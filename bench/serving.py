@@ -160,6 +160,20 @@ def _wait_ready(port: int, process: subprocess.Popen[bytes], seconds: float = 12
     raise SystemExit(f"server on port {port} did not become ready")
 
 
+def _mean_batch(port: int) -> float:
+    """Events per explanation call, from the server's own metrics (batching at work)."""
+    import httpx
+
+    text = httpx.get(f"http://127.0.0.1:{port}/metrics").text
+    totals = {}
+    for line in text.splitlines():
+        name, _, value = line.partition(" ")
+        if name in {"causeline_explain_batch_rows_sum", "causeline_explain_batch_rows_count"}:
+            totals[name] = float(value)
+    count = totals.get("causeline_explain_batch_rows_count", 0.0)
+    return totals.get("causeline_explain_batch_rows_sum", 0.0) / count if count else float("nan")
+
+
 def _events(bundle: Path, rows: int = 200) -> list[dict[str, Any]]:
     import pandas as pd
 
@@ -216,6 +230,7 @@ def main(argv: list[str] | None = None) -> int:
                     port, requests, args.requests // args.rounds,
                     args.seconds / args.rounds, args.connections,
                 )))
+        batch = _mean_batch(ports["score"])
     finally:
         for process in processes.values():
             process.terminate()
@@ -239,6 +254,7 @@ def main(argv: list[str] | None = None) -> int:
         report(f"http_{name}_p50_ms", 1000 * pooled.percentile(0.50))
         report(f"http_{name}_p99_ms", 1000 * pooled.percentile(0.99))
     report("http_throughput_ratio", throughput["score"] / throughput["bare"])
+    report("http_score_mean_batch_events", batch)
     return 0
 
 

@@ -19,14 +19,15 @@ import signal
 import threading
 from collections.abc import AsyncIterator
 from dataclasses import dataclass
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any
 
-from fastapi import Depends, FastAPI, Query, Request, Security
+from fastapi import Depends, FastAPI, Request, Security
 from fastapi.responses import JSONResponse, Response
 from fastapi.security import HTTPAuthorizationCredentials
 from starlette.concurrency import run_in_threadpool
 
 from service import problems
+from service.api_json import FastJSONResponse
 from service.api_limits import BodyLimitMiddleware
 from service.api_models import (
     CodeOut,
@@ -48,6 +49,7 @@ from service.api_models import (
 )
 from service.api_online import online_event
 from service.api_predlog import BackgroundLog
+from service.api_requests import all_contributions, openapi_request, read_body
 from service.api_schema import EventSchema
 from service.api_scoring import Batcher, log_records
 from service.auth import ApiKeys, api_key_header, bearer, presented_key
@@ -90,7 +92,7 @@ class Service:
         )
         self.metrics = Metrics()
         self.registry = Registry(settings.bundle, settings.default_model)
-        self.batcher = Batcher(settings.batch_rows)
+        self.batcher = Batcher(settings.batch_rows, self.metrics.batch_rows.observe)
         folder = settings.prediction_log_folder
         self.log = None if folder is None else BackgroundLog(
             folder, self.metrics, settings.prediction_log_queue,
@@ -134,19 +136,24 @@ def _service(request: Request) -> Service:
     return request.app.state.service  # type: ignore[no-any-return]
 
 
+def check_key(request: Request) -> None:
+    """A valid key when keys are configured (401 without one, 403 with a wrong one)."""
+    keys = _service(request).keys
+    if keys.enabled:
+        keys.check(presented_key(request))
+
+
 async def require_key(
     request: Request,
     _bearer: Annotated[HTTPAuthorizationCredentials | None, Security(bearer)],
     _header: Annotated[str | None, Security(api_key_header)],
 ) -> None:
-    """Every endpoint but health: a valid key when keys are configured.
+    """Every endpoint but health and scoring (which call :func:`check_key` themselves).
 
     A coroutine, though it awaits nothing: FastAPI runs plain functions in a thread pool, and
     that hop cost more than the check itself on every request.
     """
-    keys = _service(request).keys
-    if keys.enabled:
-        keys.check(presented_key(request))
+    check_key(request)
 
 
 async def require_admin(
@@ -156,7 +163,7 @@ async def require_admin(
 ) -> None:
     """Admin endpoints: a valid key always; with no keys only when explicitly allowed."""
     keys = _service(request).keys
-    await require_key(request, _bearer, _header)
+    check_key(request)
     if not keys.enabled and not keys.admin_without_keys:
         raise Problem(
             403, "admin endpoints need API keys (CAUSELINE_API_KEYS); or set "
@@ -226,37 +233,34 @@ def _install_sighup(service: Service) -> bool:
 def _routes(app: FastAPI) -> None:
     keyed = [Depends(require_key)]
 
-    @app.post(
-        "/v1/score", response_model=ScoreResponse, dependencies=keyed, tags=["scoring"],
-        responses=problems.responses(400, 401, 403, 413, 422, 500),
-    )
-    async def score(
-        request: Request,
-        payload: ScoreRequest,
-        contributions: Literal["all"] | None = Query(
-            default=None, description="'all' adds every feature's contribution and base value"
-        ),
-    ) -> Response:
-        """Probability, decision and ranked reason codes for each event."""
-        return await _score(request, payload.model, payload.events, contributions == "all")
+    # The scoring endpoints check the key and read the body themselves (see
+    # service.api_requests); the OpenAPI document declares both as it would for dependencies.
+    keyed_scoring: dict[str, Any] = {
+        "response_model": ScoreResponse, "tags": ["scoring"],
+        "responses": problems.responses(400, 401, 403, 413, 415, 422, 500),
+    }
+    security = [bearer.scheme_name, api_key_header.scheme_name]
 
-    @app.post(
-        "/v1/score/timeline", response_model=ScoreResponse, dependencies=keyed,
-        tags=["scoring"], responses=problems.responses(400, 401, 403, 413, 422, 500),
-    )
-    async def score_timeline(
-        request: Request,
-        payload: TimelineScoreRequest,
-        contributions: Literal["all"] | None = Query(
-            default=None, description="'all' adds every feature's contribution and base value"
-        ),
-    ) -> Response:
+    @app.post("/v1/score", openapi_extra=openapi_request(ScoreRequest, security),
+              **keyed_scoring)
+    async def score(request: Request) -> Response:
+        """Probability, decision and ranked reason codes for each event."""
+        check_key(request)
+        payload = await read_body(request, ScoreRequest)
+        return await _score(request, payload.model, payload.events, all_contributions(request))
+
+    @app.post("/v1/score/timeline",
+              openapi_extra=openapi_request(TimelineScoreRequest, security), **keyed_scoring)
+    async def score_timeline(request: Request) -> Response:
         """Score one entity from its raw logs: the snapshot is built by the batch build's code."""
+        check_key(request)
+        payload = await read_body(request, TimelineScoreRequest)
+        flag = all_contributions(request)
         current = _service(request).current
         assert current is not None
         model, _ = current.pick(payload.model)
         event = await run_in_threadpool(online_event, model.bundle, payload)
-        return await _score(request, payload.model, [event], contributions == "all")
+        return await _score(request, payload.model, [event], flag)
 
     @app.get("/v1/models", response_model=ModelList, dependencies=keyed, tags=["models"],
              responses=problems.responses(401, 403))
@@ -367,14 +371,12 @@ async def _score(
         service.log.submit(log_records(model, events, scored.records))
     body = {"model": {"name": model.name, "version": model.version},
             "results": scored.records}
-    return JSONResponse(body)
+    return FastJSONResponse(body)
 
 
 def _count(service: Service, model: Model, records: list[dict[str, object]]) -> None:
-    service.metrics.events.labels(model.name).inc(len(records))
-    for record in records:
-        for reason in record["reasons"]:  # type: ignore[attr-defined]
-            service.metrics.reasons.labels(model.name, reason["code"]).inc()
+    codes = [reason["code"] for record in records for reason in record["reasons"]]  # type: ignore[attr-defined]
+    service.metrics.count_scored(model.name, len(records), codes)
 
 
 def describe(model: Model, schema: EventSchema) -> ModelDescription:

@@ -1,8 +1,8 @@
 """The request-body size limit, enforced before any of the body is parsed.
 
-A declared ``Content-Length`` over the limit is refused at once; a chunked body is read up to the
-limit and refused when it goes past it, so a client can never make the server buffer more than
-``max_bytes``.
+A declared ``Content-Length`` over the limit is refused at once (within it, the server reads no
+more than declared); a chunked body is read up to the limit and refused when it goes past it, so a
+client can never make the server buffer more than ``max_bytes``.
 """
 
 from __future__ import annotations
@@ -27,6 +27,11 @@ class BodyLimitMiddleware:
         declared = _content_length(scope)
         if declared is not None and declared > self.max_bytes:
             await self._refuse(scope, receive, send)
+            return
+        if declared is not None:
+            # The server reads no more than a declared length (h11 refuses a longer body),
+            # so there is nothing to count: pass the body through unbuffered.
+            await self.app(scope, receive, send)
             return
         body, more = bytearray(), True
         while more:

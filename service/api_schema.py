@@ -17,6 +17,8 @@ from service.bundle import Bundle
 from service.features import RowProblem
 from service.problems import FieldError
 
+_ABSENT = object()
+
 
 class EventSchema:
     """Required and optional fields of an event, with the JSON type each takes."""
@@ -40,17 +42,26 @@ class EventSchema:
         """Unknown and missing fields, wrong JSON types, NaN and Infinity tokens."""
         errors: list[FieldError] = []
         for index, event in enumerate(events):
-            if self.reject_unknown:
+            if self.reject_unknown and not self.known.issuperset(event):
                 errors += [
                     FieldError(event=index, field=str(name), message="unknown field")
                     for name in event if name not in self.known
                 ]
             for name in self.required:
-                if name not in event:
+                value = event.get(name, _ABSENT)
+                # The common cases first, cheaply: null, a finite number where a number
+                # belongs (NaN and infinity fail the comparison), text where text belongs.
+                kind = type(value)
+                if value is None or (
+                    (kind is str) if name in self.text
+                    else (kind is int or (kind is float and -math.inf < value < math.inf))
+                ):
+                    continue
+                if value is _ABSENT:
                     message = "field is required (send null for an unknown value)"
                     errors.append(FieldError(event=index, field=name, message=message))
                     continue
-                message = self._type_error(name, event[name])
+                message = self._type_error(name, value)
                 if message:
                     errors.append(FieldError(event=index, field=name, message=message))
             for name in self.optional:
@@ -93,9 +104,7 @@ class EventSchema:
                     [None if v is None else str(v) for v in values], dtype=object
                 )
             else:
-                columns[name] = np.array(
-                    [np.nan if v is None else v for v in values], dtype=np.float64
-                )
+                columns[name] = np.array(values, dtype=np.float64)  # None becomes NaN
         columns[self.id_field] = np.array(list(ids), dtype=object)
         return columns
 

@@ -10,20 +10,17 @@ batch equals what it would get alone.
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, replace
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
 from starlette.concurrency import run_in_threadpool
 
 from service.api_schema import EventSchema, event_id
-from service.explain import Explanation
-from service.features import FeatureMatrix
 from service.problems import FieldError
 from service.registry import Model
 from service.report import explanation_records
-from service.treeshap import Contributions
 
 INLINE_ROWS = 64
 
@@ -51,8 +48,11 @@ class Scored:
 class Batcher:
     """Queues jobs and explains them in batches of up to ``max_rows`` events, one at a time."""
 
-    def __init__(self, max_rows: int = 64) -> None:
+    def __init__(
+        self, max_rows: int = 64, observe: Callable[[float], None] | None = None
+    ) -> None:
         self.max_rows = max_rows
+        self._observe = observe  # told each batch's number of events
         self._pending: list[Job] = []
         self._running = False
         self._loop: asyncio.AbstractEventLoop | None = None
@@ -80,6 +80,8 @@ class Batcher:
                 await asyncio.sleep(0)
                 batch = self._take()
                 rows = sum(len(job.events) for job in batch)
+                if self._observe is not None:
+                    self._observe(rows)
                 try:
                     if rows <= INLINE_ROWS:
                         # A thread would wait for the GIL (up to its 5 ms switch interval)
@@ -120,36 +122,19 @@ def explain_jobs(jobs: Sequence[Job]) -> list[Scored]:
     explanation = model.explainer.explain(schema.frame(events, ids))
     threshold = model.bundle.manifest.decision.threshold
     names = model.bundle.spec.feature_names
+    problems = explanation.features.problems
     out, start = [], 0
     for job in jobs:
         stop = start + len(job.events)
-        part = slice_explanation(explanation, start, stop)
-        if part.features.problems:
-            out.append(Scored([], schema.problem_errors(part.features.problems)))
+        mine = [p for p in problems if start <= p.row < stop]
+        if mine:
+            out.append(Scored([], schema.problem_errors(mine, offset=start)))
         else:
-            out.append(Scored(explanation_records(part, threshold, names, job.all_contributions),
-                              []))
+            out.append(Scored(explanation_records(
+                explanation, threshold, names, job.all_contributions, range(start, stop)
+            ), []))
         start = stop
     return out
-
-
-def slice_explanation(explanation: Explanation, start: int, stop: int) -> Explanation:
-    """Rows ``start:stop`` of an explanation, with problem rows renumbered from 0."""
-    features = explanation.features
-    problems = [replace(p, row=p.row - start) for p in features.problems
-                if start <= p.row < stop]
-    return Explanation(
-        ids=explanation.ids[start:stop],
-        features=FeatureMatrix(features.values[start:stop], features.names, problems),
-        contributions=Contributions(
-            explanation.contributions.values[start:stop], explanation.contributions.base_value
-        ),
-        probability=explanation.probability[start:stop],
-        decision=explanation.decision[start:stop],
-        code_contributions=explanation.code_contributions[start:stop],
-        reasons=explanation.reasons[start:stop],
-        warnings=explanation.warnings[start:stop],
-    )
 
 
 def log_records(

@@ -76,8 +76,8 @@ class Explainer:
         out: list[list[str]] = [[] for _ in range(matrix.values.shape[0])]
         for problem in matrix.problems:
             out[problem.row].append(_problem_text(problem))
-        with np.errstate(invalid="ignore"):
-            outside = (matrix.values < self._low) | (matrix.values > self._high)
+        # NaN (missing) compares false, quietly: never outside.
+        outside = (matrix.values < self._low) | (matrix.values > self._high)
         for row, position in zip(*np.nonzero(outside), strict=True):
             name = matrix.names[position]
             out[row].append(

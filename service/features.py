@@ -66,20 +66,30 @@ class FeatureBuilder:
         self._numeric_positions = [
             i for i, f in enumerate(self.features) if not f.derived and f.kind == "numeric"
         ]
+        self._categorical_positions = [
+            i for i, f in enumerate(self.features) if not f.derived and f.kind == "categorical"
+        ]
+        self._raw_positions = [i for i, f in enumerate(self.features) if not f.derived]
         self._derived_positions = [i for i, f in enumerate(self.features) if f.derived]
+        self._names = [f.name for f in self.features]
+        self._sources = [f.name if f.derived else f.source_column for f in self.features]
         self._required_positions = [i for i, f in enumerate(self.features) if not f.allow_missing]
         self._codes = {
             name: {value: code for code, value in enumerate(values)}
             for name, values in self.categories.items()
         }
+        self._required_columns = self._list_required_columns()
 
     @property
     def names(self) -> list[str]:
-        return [feature.name for feature in self.features]
+        return list(self._names)
 
     @property
     def required_columns(self) -> list[str]:
         """Raw columns an input must hold, in a stable order."""
+        return list(self._required_columns)
+
+    def _list_required_columns(self) -> list[str]:
         raw = {f.name: f.source_column for f in self.features if not f.derived}
         needed: list[str] = []
         for feature in self.features:
@@ -100,61 +110,69 @@ class FeatureBuilder:
         ``table`` is a DataFrame, or a mapping of column name to equal-length arrays (the HTTP
         layer's cheaper form for a few events).
         """
-        missing = self.missing_columns(table.keys())
+        missing = [column for column in self._required_columns if column not in table]
         if missing:
             raise DataError(f"missing column {missing[0]!r}" + _more(missing))
         rows = table_rows(table)
         problems: list[RowProblem] = []
         out = np.empty((rows, len(self.features)), dtype=np.float64)
-        raw_values: dict[str, np.ndarray] = {}
-        for position, feature in enumerate(self.features):
-            if feature.derived:
-                continue
-            column = column_values(table, feature.source_column, feature.kind == "categorical")
-            if feature.kind == "categorical":
-                out[:, position] = self._encode(feature, column, problems)
-            else:
-                out[:, position] = _to_float(feature.name, column, problems)
-            raw_values[feature.name] = out[:, position]
+        numeric = self._numeric_positions
+        columns = [column_values(table, self._sources[p]) for p in numeric]
+        if all(column.dtype.kind in "biuf" for column in columns):
+            # Numbers need no parsing: one copy for them all keeps single events cheap.
+            out[:, numeric] = np.array(columns, dtype=np.float64).T
+        else:
+            for position, column in zip(numeric, columns, strict=True):
+                out[:, position] = _to_float(self._names[position], column, problems)
+        for position in self._categorical_positions:
+            column = column_values(table, self._sources[position], text=True)
+            out[:, position] = self._encode(self.features[position], column, problems)
         # One pass over every raw number: infinity is a problem, scored as missing.
-        raw = self._numeric_positions
-        infinite = np.isinf(out[:, raw])
+        infinite = np.isinf(out[:, numeric])
         if infinite.any():
             for row, column in zip(*np.nonzero(infinite), strict=True):
-                problems.append(RowProblem(int(row), self.names[raw[column]], "value is infinite"))
-            block = out[:, raw]
+                name = self._names[numeric[column]]
+                problems.append(RowProblem(int(row), name, "value is infinite"))
+            block = out[:, numeric]
             block[infinite] = np.nan
-            out[:, raw] = block
-        columns = _ColumnView(raw_values, table, problems)
-        for position in self._derived_positions:
-            feature = self.features[position]
-            values = self._expressions[feature.name].evaluate(columns)
-            values = np.broadcast_to(values, (rows,)).astype(np.float64)
-            # A derived value that cannot be computed (say, a division by zero) is missing.
-            values[~np.isfinite(values)] = np.nan
-            out[:, position] = values
-        for position in self._required_positions:
-            for row in np.flatnonzero(np.isnan(out[:, position])):
-                problems.append(RowProblem(int(row), self.names[position], "value is missing"))
+            out[:, numeric] = block
+        if self._derived_positions:
+            raw_values = {self._names[p]: out[:, p] for p in self._raw_positions}
+            view = _ColumnView(raw_values, table, problems)
+            for position in self._derived_positions:
+                feature = self.features[position]
+                values = self._expressions[feature.name].evaluate(view)
+                values = np.broadcast_to(values, (rows,)).astype(np.float64)
+                # A derived value that cannot be computed (say, a division by zero) is missing.
+                values[~np.isfinite(values)] = np.nan
+                out[:, position] = values
+        required = self._required_positions
+        missing = np.isnan(out[:, required])
+        if missing.any():
+            # Column by column, so problems come in feature order as the schema lists them.
+            for column, row in zip(*np.nonzero(missing.T), strict=True):
+                problems.append(RowProblem(int(row), self._names[required[column]],
+                                           "value is missing"))
         return FeatureMatrix(out, self.names, problems)
 
     def _encode(
         self, feature: FeatureSpec, values: np.ndarray, problems: list[RowProblem]
     ) -> np.ndarray:
-        present = ~pd.isna(values)
-        # str() matches how training reads category lists (pandas' string conversion).
-        cleaned = [
-            str(value).strip() if ok else "" for value, ok in zip(values, present, strict=True)
-        ]
         lookup = self._codes[feature.name]
-        codes = np.array([lookup.get(value, -1) for value in cleaned], dtype=np.float64)
-        codes[~present] = -1.0
-        for row in np.flatnonzero(present & (codes < 0)):
-            problems.append(
-                RowProblem(int(row), feature.name, f"unknown category {cleaned[row]!r}")
-            )
-        codes[codes < 0] = np.nan
-        return codes
+        codes: list[float] = []
+        for row, value in enumerate(values):
+            if value is None or value is pd.NA or (isinstance(value, float) and value != value):
+                codes.append(np.nan)
+                continue
+            # str() matches how training reads category lists (pandas' string conversion).
+            text = str(value).strip()
+            code = lookup.get(text)
+            if code is None:
+                problems.append(RowProblem(row, feature.name, f"unknown category {text!r}"))
+                codes.append(np.nan)
+            else:
+                codes.append(code)
+        return np.array(codes, dtype=np.float64)
 
 
 Table = pd.DataFrame | Mapping[str, np.ndarray]

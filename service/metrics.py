@@ -54,6 +54,11 @@ class Metrics:
             "causeline_reason_codes_issued", "Reason codes returned, by code", ["model", "code"],
             registry=r,
         )
+        self.batch_rows = Histogram(
+            "causeline_explain_batch_rows",
+            "Events per explanation call (concurrent requests share a call)",
+            buckets=(1, 2, 4, 8, 16, 32, 64, 128, 256, 1024), registry=r,
+        )
         self.bundle_failures = Counter(
             "causeline_bundle_load_failures", "Bundle loads or reloads refused", registry=r
         )
@@ -74,9 +79,19 @@ class Metrics:
         self.log_written = Counter(
             "causeline_prediction_log_records", "Scored events written to the log", registry=r
         )
+        self._reason_series: dict[tuple[str, str], Any] = {}
         self.log_queue = Gauge(
             "causeline_prediction_log_queue_records", "Records waiting to be written", registry=r
         )
+
+    def count_scored(self, model: str, events: int, codes: list[str]) -> None:
+        """Events scored by ``model`` and the reason codes they were given."""
+        self.events.labels(model).inc(events)
+        for code in codes:
+            series = self._reason_series.get((model, code))
+            if series is None:  # labels() locks and builds a key: once per model and code
+                series = self._reason_series[(model, code)] = self.reasons.labels(model, code)
+            series.inc()
 
     def set_models(self, models: dict[str, str]) -> None:
         """Replace the served-models gauge with ``{name: version}``."""
@@ -94,6 +109,7 @@ class MetricsMiddleware:
     def __init__(self, app: ASGIApp, metrics: Metrics) -> None:
         self.app = app
         self.metrics = metrics
+        self._cache: dict[tuple[str, int], tuple[Any, Any]] = {}
 
     async def __call__(self, scope: Scope, receive: Any, send: Any) -> None:
         if scope["type"] != "http":
@@ -112,5 +128,20 @@ class MetricsMiddleware:
             await self.app(scope, receive, send_wrapper)
         finally:
             route = getattr(scope.get("route"), "path", None) or "unmatched"
-            self.metrics.requests.labels(route, str(status)).inc()
-            self.metrics.latency.labels(route).observe(time.perf_counter() - started)
+            count, latency = self._series(route, status)
+            count.inc()
+            latency.observe(time.perf_counter() - started)
+
+    def _series(self, route: str, status: int) -> tuple[Any, Any]:
+        """The request counter and latency histogram of one route and status, looked up once.
+
+        ``labels()`` takes a lock and builds its key on every call; routes are templates and
+        statuses few, so the cache stays small.
+        """
+        key = (route, status)
+        series = self._cache.get(key)
+        if series is None:
+            series = (self.metrics.requests.labels(route, str(status)),
+                      self.metrics.latency.labels(route))
+            self._cache[key] = series
+        return series

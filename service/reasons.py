@@ -12,7 +12,6 @@ Features that no code covers get an automatic code ``F_<FEATURE>`` so nothing go
 from __future__ import annotations
 
 import math
-import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
@@ -71,6 +70,13 @@ class ReasonCatalogue:
         # A directional code without a numeric typical value can never claim its features.
         self._never = (directions != "any") & ~numeric
         self._typical = np.array([t if isinstance(t, float | int) else np.nan for t in typical])
+        self._templates = [Template(code.text, self.stats) for code in self.codes]
+        # Per code, the features its reasons show: its own, then any its text names.
+        self._shown = [
+            [(name, position[name])
+             for name in dict.fromkeys([*code.features, *code.placeholders()])]
+            for code in self.codes
+        ]
         self._categories = {
             name: s.categories for name, s in self.stats.items() if s.categories is not None
         }
@@ -82,13 +88,13 @@ class ReasonCatalogue:
     def aggregate(self, contributions: np.ndarray, features: np.ndarray) -> np.ndarray:
         """Per-event contribution of each code, shape (events, codes), in log-odds."""
         summed = contributions @ self._membership
-        with np.errstate(invalid="ignore"):
-            primary = features[:, self._primary]
-            # NaN compares false on both sides: a missing value stays in the remainder.
-            side = np.where(
-                self._high, primary > self._typical,
-                np.where(self._low, primary < self._typical, ~self._never),
-            )
+        primary = features[:, self._primary]
+        # NaN compares false on both sides (quietly, in NumPy >= 1.26): a missing value stays
+        # in the remainder.
+        side = np.where(
+            self._high, primary > self._typical,
+            np.where(self._low, primary < self._typical, ~self._never),
+        )
         return np.where(side, summed, 0.0)
 
     def rank(
@@ -98,11 +104,13 @@ class ReasonCatalogue:
         k = min(top_k, code_contributions.shape[1])
         # A stable sort keeps catalogue order among ties, so rankings are reproducible.
         order = np.argsort(-code_contributions, axis=1, kind="stable")[:, :k]
-        values = np.take_along_axis(code_contributions, order, axis=1)
+        values = code_contributions[np.arange(order.shape[0])[:, None], order]
         keep = values > min_contribution
         return [
-            [(int(c), float(v)) for c, v, ok in zip(row_o, row_v, row_k, strict=True) if ok]
-            for row_o, row_v, row_k in zip(order, values, keep, strict=True)
+            [(c, v) for c, v, ok in zip(row_o, row_v, row_k, strict=True) if ok]
+            for row_o, row_v, row_k in zip(
+                order.tolist(), values.tolist(), keep.tolist(), strict=True
+            )
         ]
 
     def decode(self, name: str, value: float) -> Value:
@@ -117,22 +125,38 @@ class ReasonCatalogue:
     def reason(self, position: int, contribution: float, row: Sequence[float]) -> Reason:
         """Render code ``position`` for one event's feature values ``row``."""
         code = self.codes[position]
-        names = list(dict.fromkeys([*code.features, *code.placeholders()]))
         values = {
-            name: self.decode(name, row[self.feature_names.index(name)]) for name in names
+            name: self.decode(name, row[column]) for name, column in self._shown[position]
         }
-        text = render(code.text, values, self.stats)
+        text = self._templates[position].fill(values)
         return Reason(code=code.code, text=text, contribution=contribution, values=values)
 
 
-def render(template: str, values: Mapping[str, Value], stats: Mapping[str, FeatureStats]) -> str:
-    """Fill ``{feature}`` and ``{feature:typical}``; never Python's format (no attribute access)."""
-    def fill(match: re.Match[str]) -> str:
-        name, typical = match.group(1), match.group(2)
-        value = stats[name].typical if typical else values.get(name)
-        return format_value(value)
+class Template:
+    """A reason text split once into literal text and the features whose values fill it.
 
-    return PLACEHOLDER.sub(fill, template)
+    ``{feature}`` takes the event's value, ``{feature:typical}`` the training typical value
+    (fixed, so written in at once). Never Python's format: a template cannot reach attributes.
+    """
+
+    def __init__(self, text: str, stats: Mapping[str, FeatureStats]) -> None:
+        self.parts: list[tuple[str, str | None]] = []  # literal text, then a feature or None
+        position = 0
+        for match in PLACEHOLDER.finditer(text):
+            literal, name = text[position:match.start()], match.group(1)
+            if match.group(2):
+                self.parts.append((literal + format_value(stats[name].typical), None))
+            else:
+                self.parts.append((literal, name))
+            position = match.end()
+        self.tail = text[position:]
+
+    def fill(self, values: Mapping[str, Value]) -> str:
+        filled = [
+            literal if name is None else literal + format_value(values.get(name))
+            for literal, name in self.parts
+        ]
+        return "".join(filled) + self.tail
 
 
 def format_value(value: Value) -> str:

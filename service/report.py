@@ -10,11 +10,13 @@ from service.explain import Explanation
 
 
 def explanation_records(
-    explanation: Explanation, threshold: float, names: list[str], all_contributions: bool
+    explanation: Explanation, threshold: float, names: list[str], all_contributions: bool,
+    rows: range | None = None,
 ) -> list[dict[str, Any]]:
-    """One JSON-ready record per event."""
+    """One JSON-ready record per event (of ``rows`` only, when given)."""
     records = []
-    for row, event_id in enumerate(explanation.ids):
+    for row in rows if rows is not None else range(len(explanation.ids)):
+        event_id = explanation.ids[row]
         record: dict[str, Any] = {
             "id": event_id,
             "probability": float(explanation.probability[row]),

@@ -321,6 +321,56 @@ def test_malformed_json(client: TestClient, openapi: OpenAPICheck) -> None:
     refused(post_raw(client, b'{"events": [{"month": 5,'), openapi, 400)
 
 
+def test_empty_body(client: TestClient, openapi: OpenAPICheck) -> None:
+    errors = refused(post_raw(client, b""), openapi)
+    assert errors == [{"field": "body", "message": "field is required"}]
+
+
+def test_body_that_is_not_json_media(client: TestClient, openapi: OpenAPICheck,
+                                     events: list[dict]) -> None:
+    # RFC 9110 section 15.5.16: 415 for a content type the resource does not take.
+    response = client.post("/v1/score", content=json.dumps({"events": events[:1]}),
+                           headers={"content-type": "text/plain"})
+    refused(response, openapi, 415)
+    # A JSON media type with parameters or a +json suffix is JSON (RFC 6839 section 3.1).
+    for media in ("application/json; charset=utf-8", "application/vnd.causeline+json"):
+        response = client.post("/v1/score", content=json.dumps({"events": events[:1]}),
+                               headers={"content-type": media})
+        assert response.status_code == 200, (media, response.text)
+
+
+def test_body_of_the_wrong_shape(client: TestClient, openapi: OpenAPICheck,
+                                 events: list[dict]) -> None:
+    errors = refused(post_raw(client, b'[1, 2]'), openapi)
+    assert [e["field"] for e in errors] == ["body"]
+    errors = refused(client.post("/v1/score", json={"events": events[:1], "extra": 1,
+                                                    "model": 3}), openapi)
+    assert {(e["field"], e["message"]) for e in errors} >= {("extra", "unknown field")}
+    assert "model" in {e["field"] for e in errors}
+
+
+def test_contributions_flag_takes_only_all(client: TestClient, openapi: OpenAPICheck,
+                                          events: list[dict]) -> None:
+    errors = refused(client.post("/v1/score?contributions=some", json={"events": events[:1]}),
+                     openapi)
+    assert [e["field"] for e in errors] == ["contributions"]
+
+
+def test_openapi_declares_what_the_scoring_endpoints_read(client: TestClient) -> None:
+    # The scoring endpoints read the body, flag and key by hand (service.api_requests); the
+    # document must still say what they take, as it does for the endpoints FastAPI reads.
+    spec = client.get("/openapi.json").json()
+    schemes = set(spec["components"]["securitySchemes"])
+    for path, model in (("/v1/score", "events"), ("/v1/score/timeline", "readings")):
+        operation = spec["paths"][path]["post"]
+        body = operation["requestBody"]["content"]["application/json"]["schema"]
+        assert model in body["required"] and body["additionalProperties"] is False
+        assert [p["name"] for p in operation["parameters"]] == ["contributions"]
+        assert {name for entry in operation["security"] for name in entry} == schemes
+    models = spec["paths"]["/v1/models"]["get"]
+    assert {name for entry in models["security"] for name in entry} == schemes
+
+
 def test_too_many_events(client: TestClient, openapi: OpenAPICheck, events: list[dict]) -> None:
     errors = refused(client.post("/v1/score", json={"events": events * 5}), openapi, 413)
     assert errors == [{"field": "events", "message": "at most 50 events per request"}]
@@ -438,6 +488,9 @@ def test_metrics_count_requests_events_and_reason_codes(
     assert metric(text, "causeline_http_requests_total", route="/v1/score", status="200") == 1
     assert metric(text, "causeline_http_requests_total", route="/v1/score", status="422") == 1
     assert metric(text, "causeline_http_request_seconds_count", route="/v1/score") == 2
+    # One explanation call for the scored request (the refused one never reached the batcher).
+    assert metric(text, "causeline_explain_batch_rows_count") == 1
+    assert metric(text, "causeline_explain_batch_rows_sum") == len(events)
 
 
 # ---------------------------------------------------------------- prediction log
