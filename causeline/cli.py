@@ -282,11 +282,14 @@ def _progress(message: str) -> None:
 
 def _explain_dask(args: argparse.Namespace, bundle) -> int:  # type: ignore[no-untyped-def]
     from service.dask_engine import explain_partitions
+    from service.rejects import rejects_path
 
     totals = explain_partitions(
         bundle, args.input, args.out, args.top, args.all_contributions, _dask_settings(args)
     )
     _print_explain_counts(totals.rows, totals.flagged, totals.warned, totals.leading, args.out)
+    if totals.rejected:
+        print(f"rejected: {totals.rejected} unreadable rows -> {rejects_path(args.out)}")
     return 0
 
 

@@ -7,6 +7,9 @@ bundle's *path*, never a model: each worker loads and verifies the bundle once
 shared volume). Without a scheduler address a :class:`~distributed.LocalCluster` is started for
 the run and closed at its end.
 
+CSV blocks are read leniently, as the local engine reads a whole file: unreadable rows are set
+aside per block (:class:`Block`) and numbered as the local engine numbers them.
+
 ``explain`` streams each partition's output to the file in input order, keeping at most
 :data:`AHEAD` partitions in flight. Rows are explained the same way as by the local engine
 (the same :class:`~service.explain.Explainer`, row by row independent), so contributions agree
@@ -18,10 +21,9 @@ from __future__ import annotations
 import csv
 import glob
 import gzip
-import io
 import json
 from collections import Counter, deque
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from functools import lru_cache
@@ -30,6 +32,7 @@ from typing import Any
 
 import dask
 import dask.dataframe as dd
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
@@ -40,7 +43,7 @@ from service.bundle import Bundle, load_bundle
 from service.csvsafe import escape_frame
 from service.errors import CauselineError, DataError, first_line
 from service.explain import Explainer
-from service.rejects import empty_rejects, rejects_path, write_rejects
+from service.rejects import ROW, empty_rejects, lenient_text, rejects_path, write_rejects
 from service.report import explanation_frame, explanation_records
 from service.storage import atomic_file
 from service.tables import as_text, table_format
@@ -103,8 +106,41 @@ def input_kind(path: Path | str) -> str:
 
 
 @dataclass(frozen=True)
+class Block:
+    """One partition as read: its readable rows, where they came from, and its rejects."""
+
+    table: pd.DataFrame  # readable rows, index 0..n-1, ids/entities as pandas strings (as_text)
+    rows: np.ndarray  # int64, per readable row its number *within the partition*
+    rejects: pd.DataFrame  # rejects table as read_lenient's, `row` numbered within the partition
+    span: int  # how many numbers the partition uses: the next partition starts after them
+
+
+def block_offsets(spans: Sequence[int]) -> np.ndarray:
+    """Per partition, the number to add to its local row numbers: the earlier partitions' spans.
+
+    ``offset + local`` is the number the local engine gives the row: the line in a CSV input
+    (header = line 1; files of a glob continue as if one file with one header), the 1-based row
+    in Parquet.
+    """
+    spans = np.asarray(spans, dtype=np.int64)
+    return np.cumsum(spans) - spans
+
+
+def joined_rejects(
+    rejects: Sequence[pd.DataFrame], spans: Sequence[int], columns: Sequence[str]
+) -> pd.DataFrame:
+    """The partitions' rejects, in input order, as one table numbered as the local engine's."""
+    shifted = [
+        part.assign(**{ROW: part[ROW].to_numpy(dtype=np.int64) + offset})
+        for part, offset in zip(rejects, block_offsets(spans), strict=True)
+        if len(part)
+    ]
+    return pd.concat(shifted, ignore_index=True) if shifted else empty_rejects(columns)
+
+
+@dataclass(frozen=True)
 class Partitions:
-    """The input as delayed pandas frames in input order, its column names and its kind."""
+    """The input as delayed :class:`Block` objects in input order, its column names and kind."""
 
     parts: list[Any]
     columns: list[str]
@@ -112,12 +148,13 @@ class Partitions:
 
 
 def read_partitions(path: Path | str, text_columns: list[str]) -> Partitions:
-    """The input, lazily, one partition at a time; ids stay text as in the local read.
+    """The input, lazily, one :class:`Block` at a time; ids stay text as in the local read.
 
-    A CSV block is parsed by pandas on its own, with the file's header line, exactly as the local
-    reader parses the whole file: each block infers its own column types, so a column that is
-    empty in the first rows (where ``dask.dataframe.read_csv`` would guess a type for all blocks)
-    reads as it does locally. Blocks end at line breaks, so cells must not hold line breaks.
+    A CSV block is read on its own, with the file's header line, exactly as the local reader
+    reads a whole file (:func:`service.rejects.lenient_text`): unreadable rows are set aside and
+    each block infers its own column types, so a column that is empty in the first rows (where
+    ``dask.dataframe.read_csv`` would guess a type for all blocks) reads as it does locally.
+    Blocks end at line breaks, so cells must not hold line breaks.
     """
     text = str(path)
     kind = input_kind(text)
@@ -129,39 +166,57 @@ def read_partitions(path: Path | str, text_columns: list[str]) -> Partitions:
             # Plain object strings, as pandas reads them locally: the features come out the same.
             with dask.config.set({"dataframe.convert-string": False}):
                 frame = dd.read_parquet(files if len(files) > 1 else files[0])
-            return Partitions(list(frame.to_delayed(optimize_graph=True)), list(frame.columns),
-                              kind)
-        parts: list[Any] = []
+            parts: list[Any] = [
+                dask.delayed(_parquet_block)(part, text_columns)
+                for part in frame.to_delayed(optimize_graph=True)
+            ]
+            return Partitions(parts, list(frame.columns), kind)
+        parts = []
         columns: list[str] = []
-        for name in files:
+        for position, name in enumerate(files):
             with open(name, "rb") as handle:
                 header = handle.readline()
             columns = columns or next(csv.reader([header.decode("utf-8-sig")]))
             _, blocks = read_bytes(name, delimiter=b"\n", blocksize=CSV_BLOCK, sample=False)
             for number, block in enumerate(blocks[0]):
-                parts.append(dask.delayed(_parse_csv)(
-                    block, header if number else b"", text_columns, name
+                # Only the first file's own header line takes a number (line 1): a later file
+                # continues the first, and a later block gets the header only to be parsed.
+                unnumbered = 0 if position == number == 0 else 1
+                parts.append(dask.delayed(_csv_block)(
+                    block, header if number else b"", unnumbered, text_columns, name
                 ))
     except (ValueError, OSError, UnicodeDecodeError) as exc:
         raise DataError(f"{path}: cannot be read as {kind}: {first_line(exc)}") from None
     return Partitions(parts, columns, kind)
 
 
-def _parse_csv(block: bytes, header: bytes, text_columns: list[str], name: str) -> pd.DataFrame:
-    """On a worker: one CSV block as :func:`service.tables.read_table` reads a whole file."""
-    try:
-        frame = pd.read_csv(
-            io.BytesIO(header + block), dtype={c: "string" for c in text_columns} or None,
-            encoding="utf-8",
-        )
-    except UnicodeDecodeError as exc:
-        raise DataError(f"{name}: not UTF-8 text ({exc.reason})") from None
-    except (ValueError, pd.errors.ParserError) as exc:
-        raise DataError(
-            f"{name}: cannot be read as csv: {first_line(exc)} (the dask engine reads clean "
-            "files only; --engine local sets broken rows aside)"
-        ) from None
-    return as_text(frame, text_columns)
+def _csv_block(
+    block: bytes, header: bytes, unnumbered: int, text_columns: list[str], name: str
+) -> Block:
+    """On a worker: one CSV block read as :func:`service.rejects.read_lenient` reads a file.
+
+    ``unnumbered`` leading lines of ``header + block`` (a header) take no row number.
+    """
+    data = header + block
+    # Undecodable bytes survive as lone surrogates, so one bad byte costs one row, not the block.
+    read = lenient_text(
+        "csv", data.decode("utf-8", errors="surrogateescape"), text_columns, Path(name)
+    )
+    rejects = read.rejects.assign(**{ROW: read.rejects[ROW].to_numpy() - unnumbered})
+    return Block(read.table, read.rows - unnumbered, rejects, _lines(data) - unnumbered)
+
+
+def _lines(data: bytes) -> int:
+    """Lines in ``data``; a last line without a line break (a file's end) counts too."""
+    return data.count(b"\n") + (1 if data and not data.endswith(b"\n") else 0)
+
+
+def _parquet_block(frame: pd.DataFrame, text_columns: list[str]) -> Block:
+    """On a worker: one Parquet partition as a :class:`Block`; Parquet has no broken rows."""
+    table = as_text(frame.reset_index(drop=True), text_columns)
+    count = len(table)
+    return Block(table, np.arange(1, count + 1, dtype=np.int64), empty_rejects(table.columns),
+                 count)
 
 
 @lru_cache(maxsize=4)
@@ -209,15 +264,29 @@ class ExplainTotals:
     flagged: int = 0
     warned: int = 0
     leading: Counter[str] = field(default_factory=Counter)
+    rejected: int = 0
+
+
+@dataclass(frozen=True)
+class _Explained:
+    """What a worker sends back for one partition: its output, counts and rejects."""
+
+    output: Any  # a frame, or JSON lines as text
+    rows: int
+    flagged: int
+    warned: int
+    leading: Counter[str]
+    rejects: pd.DataFrame
+    span: int
 
 
 def _explain_part(
-    table: pd.DataFrame, bundle_path: str, top: int | None, all_contributions: bool, kind: str
-) -> tuple[Any, int, int, int, Counter[str]]:
-    """On a worker: one partition's output (a frame, or JSON lines as text) and its counts."""
+    block: Block, bundle_path: str, top: int | None, all_contributions: bool, kind: str
+) -> _Explained:
+    """On a worker: one partition's output and its counts; its rejects are passed on."""
     explainer = worker_explainer(bundle_path, top)
     bundle = explainer.bundle
-    table = as_text(table.reset_index(drop=True), [bundle.spec.id])
+    table = as_text(block.table.reset_index(drop=True), [bundle.spec.id])
     explanation = explainer.explain(table)
     threshold = bundle.manifest.decision.threshold
     names = bundle.spec.feature_names
@@ -235,7 +304,8 @@ def _explain_part(
         if reasons and flagged
     )
     warned = sum(1 for w in explanation.warnings if w)
-    return out, len(explanation.ids), int(explanation.decision.sum()), warned, leading
+    return _Explained(out, len(explanation.ids), int(explanation.decision.sum()), warned, leading,
+                      block.rejects, block.span)
 
 
 def explain_partitions(
@@ -248,15 +318,16 @@ def explain_partitions(
 ) -> ExplainTotals:
     """``causeline explain --engine dask``: the same output file, written partition by partition.
 
-    The input is read by Dask, which has no lenient reader: a broken line stops the run with one
-    line (the local engine sets such rows aside). The rejects file is still written, empty, so
-    both engines leave the same files.
+    Unreadable rows are set aside per partition and written, numbered as the local engine numbers
+    them, to the same rejects file beside the output (empty when nothing was rejected).
     """
     out = Path(out)
     kind = table_format(out)
     source = read_partitions(input_path, [bundle.spec.id])
     bundle_path = str(Path(bundle.path).resolve())
     totals = ExplainTotals()
+    rejects: list[pd.DataFrame] = []
+    spans: list[int] = []
     with dask_client(settings) as client, atomic_file(out) as temporary:
         writer = _PartWriter(temporary, kind, out.name.lower().endswith(".gz"))
         try:
@@ -265,18 +336,21 @@ def explain_partitions(
                 for part in source.parts
             ]
 
-            def consume(_: int, result: tuple[Any, int, int, int, Counter[str]]) -> None:
-                part, rows, flagged, warned, leading = result
-                writer.write(part)
-                totals.rows += rows
-                totals.flagged += flagged
-                totals.warned += warned
-                totals.leading.update(leading)
+            def consume(_: int, result: _Explained) -> None:
+                writer.write(result.output)
+                totals.rows += result.rows
+                totals.flagged += result.flagged
+                totals.warned += result.warned
+                totals.leading.update(result.leading)
+                rejects.append(result.rejects)
+                spans.append(result.span)
 
             stream_ordered(client, tasks, consume)
         finally:
             writer.close()
-    write_rejects(empty_rejects(source.columns), rejects_path(out))
+    joined = joined_rejects(rejects, spans, source.columns)
+    write_rejects(joined, rejects_path(out))
+    totals.rejected = len(joined)
     return totals
 
 
@@ -290,11 +364,20 @@ class _PartWriter:
         self.schema: pa.Schema | None = None
         self.path = path
         self.handle: Any = None
+        self.held: pd.DataFrame | None = None
         if kind != "parquet":
             opener = gzip.open if gz else open
             self.handle = opener(path, "wt", encoding="utf-8", newline="")
 
     def write(self, part: Any) -> None:
+        if self.kind != "jsonl" and len(part) == 0:
+            # A partition whose rows were all rejected has columns without types, which would
+            # fix a wrong Parquet schema; it is written only if no partition has rows.
+            self.held = part if self.held is None else self.held
+            return
+        self._append(part)
+
+    def _append(self, part: Any) -> None:
         if self.kind == "jsonl":
             self.handle.write(part)
         elif self.kind == "csv":
@@ -308,6 +391,8 @@ class _PartWriter:
         self.first = False
 
     def close(self) -> None:
+        if self.first and self.held is not None:
+            self._append(self.held)
         if self.handle is not None:
             self.handle.close()
         if self.parquet is not None:

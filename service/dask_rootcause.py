@@ -1,19 +1,23 @@
-"""``rootcause --engine dask``: select and explain events on the workers, group on a sample.
+"""``rootcause --engine dask``: the root-cause job with every per-event step on the workers.
 
-Per partition, a worker reads the rows, sets bad rows aside, applies the time window, selects
-the events (labelled, or scored at or above the threshold) and explains only those. What comes
-back to the client is per *event*, never per row: the events' input rows, times and
-explanations (ids, probabilities, reasons, feature and code-contribution matrices), plus a
-bounded uniform sample of feature rows for the fix simulation and the rejected rows. Events are
-a small share of the rows (a few per cent in the demo), so the client's memory follows the
-number of events, not the size of the input.
+The client never holds per-event data, so its memory follows the number of groups and the
+bounded samples below, not the size of the input:
 
-Grouping. HDBSCAN is fitted on a uniform random sample of at most :data:`SAMPLE_SIZE` events
-with a cause (seeded: the same input gives the same sample), with ``prediction_data`` kept;
-the other events are placed into its groups by ``hdbscan.approximate_predict`` on the workers.
-When every event fits in the sample, the fit is the local engine's fit on the same events in
-the same order, so the groups are identical. The smallest group scales with the sample:
-the size the local engine would use for all events, times the sampled share.
+1. per partition, a worker reads the rows, sets bad rows aside, applies the time window,
+   selects the events (labelled, or scored at or above the threshold) and explains only those.
+   The explained events stay on the workers (Dask keeps them, spilling to disk under memory
+   pressure); the client receives counts, rejected rows and two bounded samples: feature rows
+   for the fix simulation and cause mixes for the fit;
+2. the client fits HDBSCAN on the sample of at most :data:`SAMPLE_SIZE` events with a cause,
+   with ``prediction_data`` kept; the workers place the other events into its groups with
+   ``hdbscan.approximate_predict`` and tally each partition's share of every group's
+   description (:mod:`service.rootcause_tally`), which the client adds up in input order;
+3. the workers simulate each group's fix on their events, and write nothing: the client
+   streams each partition's rows of event_groups.csv into the output in input order.
+
+When every event with a cause fits in the sample, the fit is the local engine's fit on the same
+events in the same order, so the groups are identical. The smallest group scales with the
+sample: the size the local engine would use for all events, times the sampled share.
 
 Samples are drawn without knowing the total: each row gets a seeded random key and the rows
 with the smallest keys win (a bottom-k sample), so one pass suffices and each partition sends
@@ -22,7 +26,8 @@ at most k rows.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Iterator
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -33,27 +38,23 @@ import pandas as pd
 
 from service.bundle import Bundle
 from service.dask_engine import (
+    Block,
     DaskSettings,
     dask_client,
+    joined_rejects,
     read_partitions,
     stream_ordered,
     worker_explainer,
 )
 from service.errors import DataError
-from service.explain import Explanation
-from service.features import FeatureMatrix, RowProblem
 from service.predlog import is_prediction_log
-from service.rejects import (
-    REASON,
-    ROW,
-    empty_rejects,
-)
-from service.rootcause import GroupFinder, cause_mix, default_min_cluster_size
+from service.rejects import REASON, ROW
+from service.rootcause import UNGROUPED, GroupFinder, cause_mix, default_min_cluster_size
+from service.rootcause_fix import Target
 from service.rootcause_input import EventInput, event_times, screen_rows, window_mask
 from service.rootcause_run import (
     STEPS,
     Grouping,
-    JobStart,
     RootCauseOptions,
     RootCauseResult,
     SelectedEvents,
@@ -61,8 +62,14 @@ from service.rootcause_run import (
     finish_rootcause,
     start_rootcause,
 )
+from service.rootcause_tally import (
+    EventSlice,
+    Tally,
+    avoidable_in_slice,
+    event_frame,
+    tally_slice,
+)
 from service.tables import as_text
-from service.treeshap import Contributions
 
 # HDBSCAN's fit grows faster than linearly with points; on the demo 13,000 events fit in about
 # 3 s on one core, 50,000 in well under a minute. Measured on the demo, grouping a sample of
@@ -78,62 +85,127 @@ SEED = 20240601
 
 
 @dataclass(frozen=True)
-class _Part:
-    """What one partition sends back: its events, explained, and bounded samples."""
+class _Sample:
+    """A bottom-k sample: keys, where each row came from (partition, position) and the rows."""
 
+    keys: np.ndarray
+    part: np.ndarray
+    position: np.ndarray
+    rows: np.ndarray
+
+    @staticmethod
+    def of(keys: np.ndarray, rows: np.ndarray, part: int, k: int) -> _Sample:
+        chosen = np.sort(np.argsort(keys, kind="stable")[:k])
+        return _Sample(keys[chosen], np.full(chosen.size, part), chosen, rows[chosen])
+
+    @staticmethod
+    def merge(samples: list[_Sample], k: int, width: int) -> _Sample:
+        """The k smallest keys over all samples, back in input order."""
+        if not samples:
+            return _Sample(np.zeros(0), np.zeros(0, int), np.zeros(0, int), np.zeros((0, width)))
+        keys = np.concatenate([s.keys for s in samples])
+        part = np.concatenate([s.part for s in samples])
+        position = np.concatenate([s.position for s in samples])
+        rows = np.vstack([s.rows for s in samples])
+        chosen = np.argsort(keys, kind="stable")[:k]
+        chosen = chosen[np.lexsort((position[chosen], part[chosen]))]
+        return _Sample(keys[chosen], part[chosen], position[chosen], rows[chosen])
+
+
+@dataclass(frozen=True)
+class _Selected:
+    """One partition after step 1: its events (kept on the worker) and what the client needs."""
+
+    events: EventSlice
+    summary: _Summary
+
+
+@dataclass(frozen=True)
+class _Summary:
+    """What one partition sends to the client after step 1: counts, rejects and samples."""
+
+    span: int
     rows: int
     kept: int
+    events: int
     rejects: pd.DataFrame
-    events: pd.DataFrame
-    times: pd.Series
-    explanation: Explanation | None
-    event_keys: np.ndarray
-    reference: np.ndarray
-    reference_keys: np.ndarray
+    reference: _Sample
+    mixes: _Sample
+    with_cause: int
 
 
 def _select_part(
-    table: pd.DataFrame, index: int, bundle_path: str, options: RootCauseOptions,
-    start: JobStart, reference_size: int,
-) -> _Part:
+    block: Block, index: int, bundle_path: str, options: RootCauseOptions, since: Any,
+    until: Any, reference_size: int, sample_size: int,
+) -> _Selected:
     """On a worker: one partition through steps 1-3 of the local job."""
     explainer = worker_explainer(bundle_path)
     bundle = explainer.bundle
     spec = bundle.spec
-    table = as_text(table.reset_index(drop=True), [c for c in (spec.id, spec.entity) if c])
-    rows = len(table)
-    source = EventInput(table, spec.id, spec.time, False, np.arange(rows), empty_rejects())
+    table = as_text(block.table.reset_index(drop=True),
+                    [c for c in (spec.id, spec.entity) if c])
+    source = EventInput(table, spec.id, spec.time, False, block.rows, block.rejects)
     times = event_times(source)
-    window = window_mask(times, start.since, start.until, spec.time) if rows else np.ones(0, bool)
+    window = window_mask(times, since, until, spec.time) if len(table) else np.ones(0, bool)
     table, times = table[window], times[window]
-    screened = screen_rows(
-        bundle, table, np.flatnonzero(window), empty_rejects(table.columns), options.predicted
-    )
-    rejects, reference, selected = screened.rejects, screened.reference, screened.selected
+    screened = screen_rows(bundle, table, block.rows[window], block.rejects, options.predicted)
     table, times = table[screened.keep], times[screened.keep]
+    selected = screened.selected
     events = table[selected].reset_index(drop=True)
+    explanation = explainer.explain(events)
     rng = np.random.default_rng([SEED, index])
-    reference_keys = rng.random(len(reference))
-    chosen = np.sort(np.argsort(reference_keys, kind="stable")[:reference_size])
-    return _Part(
-        rows=rows,
-        kept=len(table),
-        rejects=rejects,
-        events=events,
-        times=times[selected].reset_index(drop=True),
-        explanation=explainer.explain(events) if len(events) else None,
-        event_keys=rng.random(len(events)),
-        reference=reference[chosen],
-        reference_keys=reference_keys[chosen],
+    reference_keys = rng.random(len(screened.reference))
+    event_keys = rng.random(len(events))
+    mix, has_cause = cause_mix(explanation.code_contributions)
+    caused = np.flatnonzero(has_cause)
+    mixes = _Sample.of(event_keys[caused], mix[caused], index, sample_size)
+    mixes = replace(mixes, position=caused[mixes.position])
+    part = EventSlice(
+        index=index, events=events, times=times[selected].reset_index(drop=True),
+        explanation=explanation, keys=event_keys, entity=spec.entity,
+        labels=np.full(len(events), -1, dtype=np.int64), strength=np.zeros(len(events)),
     )
+    summary = _Summary(
+        span=block.span, rows=len(block.table) + len(block.rejects), kept=len(table),
+        events=len(events), rejects=screened.rejects,
+        reference=_Sample.of(reference_keys, screened.reference, index, reference_size),
+        mixes=mixes, with_cause=int(caused.size),
+    )
+    return _Selected(part, summary)
 
 
-def _assign(clusterer: hdbscan.HDBSCAN, mix: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """On a worker: place events into the sample's groups (label -1: none)."""
-    if len(mix) == 0:
-        return np.zeros(0, np.int64), np.zeros(0)
-    labels, strength = hdbscan.approximate_predict(clusterer, mix)
-    return np.asarray(labels, np.int64), np.where(labels >= 0, strength, 0.0)
+def _summary_of(selected: _Selected) -> _Summary:
+    return selected.summary
+
+
+def _label_part(
+    selected: _Selected, sampled: tuple[np.ndarray, np.ndarray, np.ndarray],
+    clusterer: hdbscan.HDBSCAN | None,
+) -> EventSlice:
+    """On a worker: the sample's labels for its events here, prediction for the others."""
+    part = selected.events
+    labels = np.full(len(part), -1, dtype=np.int64)
+    strength = np.zeros(len(part))
+    positions, fitted, weights = sampled
+    labels[positions], strength[positions] = fitted, weights
+    mix, has_cause = cause_mix(part.explanation.code_contributions)
+    rest = np.flatnonzero(has_cause)
+    rest = rest[~np.isin(rest, positions)]
+    if clusterer is not None and rest.size:
+        assigned, weight = hdbscan.approximate_predict(clusterer, mix[rest])
+        labels[rest] = np.asarray(assigned, np.int64)
+        strength[rest] = np.where(labels[rest] >= 0, weight, 0.0)
+    return replace(part, labels=labels, strength=strength)
+
+
+def _tally_part(part: EventSlice, groups: int, bundle_path: str) -> Tally:
+    return tally_slice(part, groups, worker_explainer(bundle_path).catalogue)
+
+
+def _avoidable_part(
+    part: EventSlice, bundle_path: str, targets: list[list[Target]], reference: np.ndarray
+) -> np.ndarray:
+    return avoidable_in_slice(worker_explainer(bundle_path).bundle, part, targets, reference)
 
 
 def run_rootcause_dask(
@@ -157,127 +229,152 @@ def run_rootcause_dask(
     if spec.id not in source.columns:
         raise DataError(f"{events_path}: no id column {spec.id!r}")
     bundle_path = str(Path(bundle.path).resolve())
+    width = len(spec.feature_names)
     progress(f"step 1-3/{STEPS}: reading, selecting and explaining events "
              f"({len(source.parts)} partitions)")
-    parts: list[_Part] = []
     with dask_client(settings) as client:
-        tasks = [
-            dask.delayed(_select_part)(part, index, bundle_path, options, start, reference_size)
+        # Step 1's results stay on the workers; only their summaries come here.
+        selected = [
+            client.compute(dask.delayed(_select_part)(
+                part, index, bundle_path, options, start.since, start.until, reference_size,
+                sample_size,
+            ))
             for index, part in enumerate(source.parts)
         ]
-        stream_ordered(client, tasks, lambda _, part: parts.append(part))
-        selection, keys = _selection(parts, source.kind, bundle, reference_size)
-        progress(f"step 4/{STEPS}: clustering {len(selection.events):,} events")
-        codes = selection.explanation.code_contributions
-        grouping = _group(client, codes, options, sample_size, keys)
-    return finish_rootcause(
-        bundle, Path(events_path), out, options, start, selection, grouping, progress
-    )
-
-
-def _selection(
-    parts: list[_Part], kind: str, bundle: Bundle, reference_size: int
-) -> tuple[SelectedEvents, np.ndarray]:
-    """The partitions' events joined in input order (and their sample keys), rejects numbered
-    as the local job numbers them."""
-    # Row numbers as the local reader gives them: line numbers in a CSV (header = line 1,
-    # assuming no line breaks inside cells), 1-based positions in Parquet.
-    first = 2 if kind == "csv" else 1
-    offsets = np.concatenate([[0], np.cumsum([p.rows for p in parts])])
-    rejects = []
-    for part, offset in zip(parts, offsets, strict=False):
-        if len(part.rejects):
-            shifted = part.rejects.copy()
-            shifted[ROW] = shifted[ROW].to_numpy() + offset + first
-            rejects.append(shifted)
-    keys = np.concatenate([p.reference_keys for p in parts]) if parts else np.zeros(0)
-    reference = (
-        np.vstack([p.reference for p in parts]) if parts
-        else np.zeros((0, len(bundle.spec.feature_names)))
-    )
-    # Bottom-k over the partitions' bottom-k samples, back in input order.
-    chosen = np.sort(np.argsort(keys, kind="stable")[:reference_size])
-    with_events = [p for p in parts if p.explanation is not None]
-    if with_events:
-        explanation = _concat([p.explanation for p in with_events])  # type: ignore[misc]
-        events = pd.concat([p.events for p in with_events], ignore_index=True)
-        times = pd.concat([p.times for p in with_events], ignore_index=True)
-    else:
-        empty = parts[0].events if parts else pd.DataFrame(columns=[bundle.spec.id])
-        explanation = worker_explainer(str(Path(bundle.path).resolve())).explain(empty)
-        events = empty.reset_index(drop=True)
-        times = pd.Series(pd.NaT, index=events.index, dtype="datetime64[ns, UTC]")
-    frame = (
-        pd.concat(rejects, ignore_index=True) if rejects
-        else empty_rejects(parts[0].events.columns if parts else ())
-    )
-    frame = frame[[ROW, REASON, *[c for c in frame.columns if c not in (ROW, REASON)]]]
-    return SelectedEvents(
-        events=events,
-        times=times,
-        explanation=explanation,
-        reference=reference[chosen],
-        rejects=frame,
-        time_column=bundle.spec.time,
-        rows_read=int(offsets[-1]),
-        rows_in_window=sum(p.kept for p in parts),
-    ), np.concatenate([p.event_keys for p in with_events]) if with_events else np.zeros(0)
-
-
-def _group(
-    client: Any, codes: np.ndarray, options: RootCauseOptions, sample_size: int, keys: np.ndarray
-) -> Grouping:
-    """HDBSCAN on a bounded sample of events, the rest placed by approximate prediction."""
-    mix, has_cause = cause_mix(codes)
-    rows = np.flatnonzero(has_cause)
-    parameters: dict[str, Any] = {"engine": "dask", "sample_size": sample_size, "seed": SEED}
-    if rows.size <= sample_size:
-        finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mix, has_cause)
-        parameters.update(min_cluster_size=finder.min_cluster_size_,
-                          min_samples=finder.min_samples_, sampled_events=int(rows.size))
-        return Grouping(finder.labels_, finder.strength_, parameters)
-    sample = np.sort(rows[np.argsort(keys[rows], kind="stable")[:sample_size]])
-    full = options.min_group_size or default_min_cluster_size(rows.size)
-    scaled = max(SAMPLED_MIN_GROUP, round(full * sample_size / rows.size))
-    finder = GroupFinder(min_cluster_size=scaled).fit(mix[sample])
-    labels = np.full(len(mix), -1, dtype=np.int64)
-    strength = np.zeros(len(mix))
-    labels[sample], strength[sample] = finder.labels_, finder.strength_
-    rest = np.setdiff1d(rows, sample, assume_unique=True)
-    if finder.clusterer_ is not None and rest.size:
-        remote = client.scatter(finder.clusterer_, broadcast=True)
-        chunks = np.array_split(rest, max(1, rest.size // sample_size + 1))
-        futures = client.map(_assign, [remote] * len(chunks), [mix[c] for c in chunks], pure=False)
-        for chunk, (assigned, weight) in zip(chunks, client.gather(futures), strict=True):
-            labels[chunk], strength[chunk] = assigned, weight
-    parameters.update(min_cluster_size=full, min_samples=finder.min_samples_,
-                      sampled_events=int(sample.size), sample_min_cluster_size=scaled)
-    return Grouping(labels, strength, parameters)
-
-
-def _concat(parts: list[Explanation]) -> Explanation:
-    """Explanations of consecutive slices of events as one (rows renumbered)."""
-    problems: list[RowProblem] = []
-    offset = 0
-    for part in parts:
-        problems += [
-            RowProblem(p.row + offset, p.column, p.message) for p in part.features.problems
+        gathered = _Gathered(sample_size, reference_size, width, len(
+            worker_explainer(bundle_path).catalogue.codes))
+        stream_ordered(client, [dask.delayed(_summary_of)(f) for f in selected],
+                       lambda _, summary: gathered.add(summary))
+        selection = gathered.selection(source.columns, bundle.spec.time)
+        mixes, with_cause = gathered.mixes, gathered.with_cause
+        progress(f"step 4/{STEPS}: clustering {gathered.events:,} events")
+        finder, parameters = _fit(mixes, with_cause, options, sample_size)
+        remote = client.scatter(finder.clusterer_, broadcast=True) if (
+            finder.clusterer_ is not None and with_cause > mixes.keys.size) else None
+        labelled = [
+            client.compute(dask.delayed(_label_part)(
+                future, _sampled_in(mixes, finder, index), remote,
+            ))
+            for index, future in enumerate(selected)
         ]
-        offset += len(part.ids)
-    return Explanation(
-        ids=[i for p in parts for i in p.ids],
-        features=FeatureMatrix(
-            values=np.vstack([p.features.values for p in parts]),
-            names=parts[0].features.names,
-            problems=problems,
-        ),
-        contributions=Contributions(
-            values=np.vstack([p.contributions.values for p in parts]),
-            base_value=parts[0].contributions.base_value,
-        ),
-        probability=np.concatenate([p.probability for p in parts]),
-        decision=np.concatenate([p.decision for p in parts]),
-        code_contributions=np.vstack([p.code_contributions for p in parts]),
-        reasons=[r for p in parts for r in p.reasons],
-        warnings=[w for p in parts for w in p.warnings],
-    )
+        del selected  # the labelled slices replace them on the workers
+        groups = int(finder.labels_.max(initial=-1)) + 1
+        tally: Tally | None = None
+
+        def add(_: int, part: Tally) -> None:
+            nonlocal tally
+            tally = part if tally is None else tally.add(part)
+
+        stream_ordered(client, [dask.delayed(_tally_part)(f, groups, bundle_path)
+                                for f in labelled], add)
+        assert tally is not None or not labelled
+        grouping = Grouping(groups, parameters, tally or _empty_tally(groups, bundle_path))
+        slices = _DaskSlices(client, labelled, bundle_path, selection.reference)
+        return finish_rootcause(
+            bundle, Path(events_path), out, options, start, selection, grouping, slices, progress
+        )
+
+
+class _DaskSlices:
+    """Steps 5 and 6 over the labelled partitions on the cluster."""
+
+    def __init__(
+        self, client: Any, parts: list[Any], bundle_path: str, reference: np.ndarray
+    ) -> None:
+        self.client = client
+        self.parts = parts
+        self.bundle_path = bundle_path
+        self.reference = reference
+
+    def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
+        total = np.zeros(len(targets))
+        if not any(targets):
+            return total
+        reference = self.client.scatter(self.reference, broadcast=True)
+
+        def add(_: int, part: np.ndarray) -> None:
+            total[:] += part
+
+        stream_ordered(self.client, [
+            dask.delayed(_avoidable_part)(f, self.bundle_path, targets, reference)
+            for f in self.parts
+        ], add)
+        return total
+
+    def event_frames(self, group_ids: list[str]) -> Iterator[pd.DataFrame]:
+        frames: list[pd.DataFrame] = []
+        tasks = [dask.delayed(event_frame)(f, group_ids, UNGROUPED) for f in self.parts]
+        # A few partitions ahead at a time: each frame is written and dropped before the next.
+        for start in range(0, len(tasks), 4):
+            stream_ordered(self.client, tasks[start:start + 4],
+                           lambda _, frame: frames.append(frame))
+            yield from frames
+            frames.clear()
+
+
+def _fit(
+    mixes: _Sample, with_cause: int, options: RootCauseOptions, sample_size: int
+) -> tuple[GroupFinder, dict[str, Any]]:
+    """HDBSCAN on the sample: the local engine's fit when the sample holds every event."""
+    parameters: dict[str, Any] = {"engine": "dask", "sample_size": sample_size, "seed": SEED}
+    if with_cause <= sample_size:
+        finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mixes.rows)
+        parameters.update(min_cluster_size=finder.min_cluster_size_,
+                          min_samples=finder.min_samples_, sampled_events=int(mixes.keys.size))
+        return finder, parameters
+    full = options.min_group_size or default_min_cluster_size(with_cause)
+    scaled = max(SAMPLED_MIN_GROUP, round(full * sample_size / with_cause))
+    finder = GroupFinder(min_cluster_size=scaled).fit(mixes.rows)
+    parameters.update(min_cluster_size=full, min_samples=finder.min_samples_,
+                      sampled_events=int(mixes.keys.size), sample_min_cluster_size=scaled)
+    return finder, parameters
+
+
+def _sampled_in(
+    mixes: _Sample, finder: GroupFinder, index: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The fit's labels and strengths of the sampled events of partition ``index``."""
+    here = mixes.part == index
+    return mixes.position[here], finder.labels_[here], finder.strength_[here]
+
+
+class _Gathered:
+    """The partitions' summaries added up as they arrive: counts, rejects, running samples.
+
+    Only the bounded samples and one span per partition are kept, so what the client holds
+    does not grow with the number of events (rejected rows excepted: they are output).
+    """
+
+    def __init__(self, sample_size: int, reference_size: int, width: int, codes: int) -> None:
+        self.sample_size, self.reference_size = sample_size, reference_size
+        self.reference = _Sample.merge([], reference_size, width)
+        self.mixes = _Sample.merge([], sample_size, codes)
+        self.rejects: list[pd.DataFrame] = []
+        self.spans: list[int] = []
+        self.rows = self.kept = self.events = self.with_cause = 0
+
+    def add(self, summary: _Summary) -> None:
+        self.reference = _Sample.merge([self.reference, summary.reference], self.reference_size,
+                                       self.reference.rows.shape[1])
+        self.mixes = _Sample.merge([self.mixes, summary.mixes], self.sample_size,
+                                   self.mixes.rows.shape[1])
+        self.rejects.append(summary.rejects)
+        self.spans.append(summary.span)
+        self.rows += summary.rows
+        self.kept += summary.kept
+        self.events += summary.events
+        self.with_cause += summary.with_cause
+
+    def selection(self, columns: list[str], time_column: str | None) -> SelectedEvents:
+        """Counts, rejects numbered as the local job numbers them, and the reference sample."""
+        frame = joined_rejects(self.rejects, self.spans, columns)
+        frame = frame[[ROW, REASON, *[c for c in frame.columns if c not in (ROW, REASON)]]]
+        return SelectedEvents(
+            reference=self.reference.rows, rejects=frame, time_column=time_column,
+            rows_read=self.rows, rows_in_window=self.kept,
+        )
+
+
+def _empty_tally(groups: int, bundle_path: str) -> Tally:
+    catalogue = worker_explainer(bundle_path).catalogue
+    return Tally(groups, len(catalogue.codes), len(catalogue.feature_names))

@@ -5,7 +5,8 @@ silently either. :func:`read_lenient` reads a CSV, JSON-lines or Parquet table a
 rows it could read plus a *rejects* table: one row per unusable input row with ``row`` (its line
 in a CSV or JSON-lines file, header = line 1; its 1-based position in a Parquet file), ``reason``
 and the original cells. Broken lines (a wrong number of fields, not JSON) and bytes that are not
-UTF-8 are caught here, per row; a cell of the wrong type is caught later by the feature builder
+UTF-8 are caught here, per row (:func:`lenient_text` does the same for text already read, such as
+one block of a large file); a cell of the wrong type is caught later by the feature builder
 (:attr:`service.features.FeatureMatrix.problems`) and moved over with :func:`add_rejects`. A
 missing column stays a whole-file error: no row could be right.
 """
@@ -74,15 +75,23 @@ def read_lenient(path: Path, text_columns: Iterable[str] = ()) -> Lenient:
         except (OSError, EOFError) as exc:
             raise DataError(f"{path}: not a readable gzip file ({exc})") from None
     # Undecodable bytes survive as lone surrogates, so one bad byte costs one row, not the file.
-    decoded = data.decode("utf-8", errors="surrogateescape").removeprefix(_BOM)
-    scan = _scan_csv(decoded, path) if kind == "csv" else _scan_jsonl(decoded)
-    # A clean file reads exactly as before; otherwise only the readable lines are parsed.
-    table = _parse(kind, scan.good_text, text, path) if scan.rejects else read_table(path, text)
+    return lenient_text(kind, data.decode("utf-8", errors="surrogateescape"), text, path)
+
+
+def lenient_text(kind: str, text: str, text_columns: Iterable[str], where: Path) -> Lenient:
+    """CSV or JSON-lines text (undecodable bytes as lone surrogates) read as :func:`read_lenient`
+    reads a file: ``rows`` are line numbers in ``text``, header = line 1; errors name ``where``.
+    """
+    text = text.removeprefix(_BOM)
+    columns = list(text_columns)
+    scan = _scan_csv(text, where) if kind == "csv" else _scan_jsonl(text)
+    # Text without rejects is parsed as given, so a clean input reads exactly as a clean file;
+    # otherwise only the readable lines are parsed.
+    table = _parse(kind, scan.good_text if scan.rejects else text, columns, where)
     if len(table) != len(scan.rows):
-        raise DataError(f"{path}: {len(table)} rows parsed but {len(scan.rows)} lines were read")
-    columns = scan.header or list(table.columns)
+        raise DataError(f"{where}: {len(table)} rows parsed but {len(scan.rows)} lines were read")
     return Lenient(table, np.asarray(scan.rows, dtype=np.int64),
-                   _reject_frame(scan.rejects, columns))
+                   _reject_frame(scan.rejects, scan.header or list(table.columns)))
 
 
 def empty_rejects(columns: Iterable[str] = ()) -> pd.DataFrame:

@@ -18,19 +18,11 @@ can be placed into existing groups.
 
 from __future__ import annotations
 
-from collections import Counter
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any
 
 import hdbscan
 import numpy as np
-import pandas as pd
-
-from service.bundle import Bundle
-from service.explain import Explanation
-from service.reasons import ReasonCatalogue, format_value
-from service.rootcause_fix import events_avoidable, fix_targets
 
 UNGROUPED = "G-UNGROUPED"
 # Density is judged over a few neighbours only: cause mixes form tight blobs, and a larger
@@ -98,116 +90,28 @@ class GroupFinder:
 
 @dataclass(frozen=True)
 class Group:
-    """One group as found in this run, before it gets its tracked id."""
+    """One group as found in this run, before it gets its tracked id; ``label`` is HDBSCAN's."""
 
-    members: np.ndarray
+    label: int
+    size: int
     signature: dict[str, float]
     leading: list[str]
 
 
-def find_groups(mix: np.ndarray, labels: np.ndarray, codes: Sequence[str]) -> list[Group]:
-    """Per HDBSCAN cluster: members, mean mix (its signature) and leading codes."""
+def find_groups(mix_sums: np.ndarray, counts: np.ndarray, codes: Sequence[str]) -> list[Group]:
+    """Per HDBSCAN cluster (rows of the summed mixes): mean mix (signature) and leading codes."""
     out = []
-    for cluster in range(int(labels.max(initial=-1)) + 1):
-        members = np.flatnonzero(labels == cluster)
-        mean = mix[members].mean(axis=0)
+    for cluster, size in enumerate(counts.tolist()):
+        if size == 0:
+            continue
+        mean = mix_sums[cluster] / size
         order = np.argsort(-mean, kind="stable")[:LEADING_CODES]
         leading = [codes[i] for i in order if mean[i] >= LEADING_SHARE] or [codes[order[0]]]
         signature = {codes[i]: float(mean[i]) for i in np.flatnonzero(mean > 0)}
-        out.append(Group(members=members, signature=signature, leading=leading))
+        out.append(Group(label=cluster, size=int(size), signature=signature, leading=leading))
     return out
 
 
 def label_for(leading: Sequence[str]) -> str:
     """A readable name from the leading codes, e.g. 'condenser fouled + store warm'."""
     return " + ".join(code.removeprefix("F_").lower().replace("_", " ") for code in leading[:2])
-
-
-@dataclass
-class GroupContext:
-    """What the group table needs besides the groups: the events and their explanation."""
-
-    bundle: Bundle
-    catalogue: ReasonCatalogue
-    table: pd.DataFrame
-    explanation: Explanation
-    times: pd.Series
-    reference: np.ndarray
-    entity: pd.Series | None = None
-
-
-def group_row(context: GroupContext, group: Group, strength: np.ndarray) -> dict[str, Any]:
-    """One groups.csv row (without id, status and share, which tracking adds)."""
-    catalogue, explanation = context.catalogue, context.explanation
-    members = group.members
-    row: dict[str, Any] = {"label": label_for(group.leading), "events": int(members.size)}
-    for rank in range(LEADING_CODES):
-        code = group.leading[rank] if rank < len(group.leading) else ""
-        mean = (
-            float(explanation.code_contributions[members, catalogue.index[code]].mean())
-            if code
-            else None
-        )
-        row[f"code_{rank + 1}"] = code
-        row[f"code_{rank + 1}_mean_contribution"] = mean
-    row["driver_values"] = _driver_values(context, group)
-    targets = fix_targets(catalogue, group.leading)
-    row["drivers"] = "controllable" if targets else "observable only"
-    fix_code = next((c for c in group.leading if catalogue.codes[catalogue.index[c]].fix), "")
-    fix = catalogue.codes[catalogue.index[fix_code]].fix if fix_code else None
-    row["fix_code"] = fix_code
-    row["fix_kind"] = fix.kind if fix else ""
-    row["fix_action"] = fix.action if fix else "no fix in the catalogue for these reason codes"
-    row["fix_simulated"] = "; ".join(t.describe() for t in targets) or "none (observable only)"
-    row["events_avoidable_model_estimate"] = events_avoidable(
-        context.bundle,
-        context.table.iloc[members],
-        explanation.probability[members],
-        targets,
-        context.reference,
-    )
-    times = context.times.iloc[members].dropna()
-    row["first_event"] = _iso(times.min()) if len(times) else ""
-    row["last_event"] = _iso(times.max()) if len(times) else ""
-    row["top_entities"] = _top_entities(context.entity, members)
-    best = members[np.argsort(-strength[members], kind="stable")[:EXAMPLES]]
-    row["example_event_ids"] = "; ".join(explanation.ids[i] for i in best)
-    return row
-
-
-def _driver_values(context: GroupContext, group: Group) -> str:
-    """Typical values of the leading codes' features in the group beside the fleet's."""
-    catalogue = context.catalogue
-    values = context.explanation.features.values[group.members]
-    parts = []
-    seen: set[str] = set()
-    for code in group.leading:
-        for name in catalogue.codes[catalogue.index[code]].features:
-            if name in seen:
-                continue
-            seen.add(name)
-            column = values[:, catalogue.feature_names.index(name)]
-            column = column[~np.isnan(column)]
-            stats = catalogue.stats[name]
-            if column.size == 0:
-                typical: object = None
-            elif stats.categories is not None:
-                most = Counter(column.tolist()).most_common(1)[0][0]
-                typical = catalogue.decode(name, float(most))
-            else:
-                typical = float(np.median(column))
-            parts.append(
-                f"{name} {format_value(typical)} (fleet {format_value(stats.typical)})"  # type: ignore[arg-type]
-            )
-    return "; ".join(parts)
-
-
-def _top_entities(entity: pd.Series | None, members: np.ndarray) -> str:
-    if entity is None:
-        return ""
-    counts = Counter(str(v) for v in entity.iloc[members] if pd.notna(v))
-    return "; ".join(f"{name} ({count})" for name, count in counts.most_common(TOP_ENTITIES))
-
-
-def _iso(stamp: pd.Timestamp) -> str:
-    return stamp.isoformat()

@@ -7,10 +7,11 @@ run's folder exactly as it was.
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 import pandas as pd
@@ -19,7 +20,7 @@ from service import htmlreport
 from service.bundle import Bundle
 from service.csvsafe import escape_frame
 from service.errors import DataError
-from service.explain import Explainer, Explanation
+from service.explain import Explainer
 from service.predlog import is_prediction_log
 from service.reasons import ReasonCatalogue
 from service.rejects import (
@@ -28,18 +29,26 @@ from service.rejects import (
 from service.rootcause import (
     LEADING_SHARE,
     UNGROUPED,
-    GroupContext,
     GroupFinder,
     cause_mix,
     find_groups,
-    group_row,
 )
+from service.rootcause_fix import Target, fix_targets
 from service.rootcause_input import (
     event_times,
     parse_time,
     read_events,
     screen_rows,
     window_mask,
+)
+from service.rootcause_tally import (
+    EventSlice,
+    Tally,
+    avoidable_in_slice,
+    event_frame,
+    group_row,
+    tally_slice,
+    weekly_frame,
 )
 from service.storage import atomic_directory
 from service.tables import write_table
@@ -65,6 +74,7 @@ CAUTION = (
     "licensed technician inspect the equipment before acting."
 )
 STEPS = 6
+SAMPLE_SEED = 20240601  # draws the bounded samples of group members (see rootcause_tally)
 
 
 @dataclass(frozen=True)
@@ -87,15 +97,10 @@ class JobStart:
 
 @dataclass(frozen=True)
 class SelectedEvents:
-    """The selected events, explained: what every engine hands to :func:`finish_rootcause`.
+    """What every engine hands to :func:`finish_rootcause` besides the groups: counts, the
+    rejected rows and the feature rows co-driver shifts of the fix simulation are fitted on
+    (:mod:`service.rootcause_fix`)."""
 
-    ``events`` holds their input rows (index 0..n-1); ``reference`` the feature rows co-driver
-    shifts of the fix simulation are fitted on (:mod:`service.rootcause_fix`).
-    """
-
-    events: pd.DataFrame
-    times: pd.Series
-    explanation: Explanation
     reference: np.ndarray
     rejects: pd.DataFrame
     time_column: str | None
@@ -105,18 +110,52 @@ class SelectedEvents:
 
 @dataclass(frozen=True)
 class Grouping:
-    """Each selected event's group label (-1 ungrouped), strength and how they were found."""
+    """The HDBSCAN groups (``groups`` labels), how they were found and their combined tally."""
 
-    labels: np.ndarray
-    strength: np.ndarray
+    groups: int
     parameters: dict[str, Any]
+    tally: Tally
+
+
+class Slices(Protocol):
+    """The steps that need every event again, done where the events are (one engine each)."""
+
+    def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
+        """Per group label, events its fix would avoid (a model estimate)."""
+        ...
+
+    def event_frames(self, group_ids: list[str]) -> Iterator[pd.DataFrame]:
+        """event_groups.csv rows, slice after slice in input order."""
+        ...
+
+
+class LocalSlices:
+    """The local engine's events: one slice, in memory."""
+
+    def __init__(self, bundle: Bundle, part: EventSlice, reference: np.ndarray) -> None:
+        self.bundle = bundle
+        self.part = part
+        self.reference = reference
+
+    def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
+        return avoidable_in_slice(self.bundle, self.part, targets, self.reference)
+
+    def event_frames(self, group_ids: list[str]) -> Iterator[pd.DataFrame]:
+        yield event_frame(self.part, group_ids, UNGROUPED)
 
 
 @dataclass(frozen=True)
 class RootCauseResult:
+    """The run's group table and summary; ``event_groups`` is read back from its CSV."""
+
     groups: pd.DataFrame
-    event_groups: pd.DataFrame
     summary: dict[str, Any]
+    folder: Path
+
+    @property
+    def event_groups(self) -> pd.DataFrame:
+        text = {"event_id": "string", "group_id": "string", "entity": "string"}
+        return pd.read_csv(self.folder / EVENT_GROUPS, dtype=text)
 
 
 def _quiet(message: str) -> None:
@@ -165,15 +204,21 @@ def run_rootcause(
 
     progress(f"step 4/{STEPS}: clustering")
     finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mix, has_cause)
+    part = EventSlice(
+        index=0, events=events, times=times, explanation=explanation,
+        keys=np.random.default_rng(SAMPLE_SEED).random(len(events)), entity=bundle.spec.entity,
+        labels=finder.labels_, strength=finder.strength_,
+    )
+    groups = int(finder.labels_.max(initial=-1)) + 1
     selection = SelectedEvents(
-        events=events, times=times, explanation=explanation, reference=reference,
-        rejects=rejects, time_column=source.time_column,
+        reference=reference, rejects=rejects, time_column=source.time_column,
         rows_read=len(source.table) + len(source.rejects), rows_in_window=len(table),
     )
-    grouping = Grouping(finder.labels_, finder.strength_, {
+    grouping = Grouping(groups, {
         "min_cluster_size": finder.min_cluster_size_, "min_samples": finder.min_samples_,
-    })
-    return finish_rootcause(bundle, events_path, out, options, start, selection, grouping, progress)
+    }, tally_slice(part, groups, explainer.catalogue))
+    return finish_rootcause(bundle, events_path, out, options, start, selection, grouping,
+                            LocalSlices(bundle, part, reference), progress)
 
 
 def start_rootcause(out: Path, options: RootCauseOptions) -> JobStart:
@@ -196,29 +241,25 @@ def finish_rootcause(
     start: JobStart,
     selection: SelectedEvents,
     grouping: Grouping,
+    slices: Slices,
     progress=_quiet,  # type: ignore[no-untyped-def]
 ) -> RootCauseResult:
     """Describe, track and write the groups: the part every engine shares."""
-    events, times, explanation = selection.events, selection.times, selection.explanation
-    reference, rejects = selection.reference, selection.rejects
+    tally, rejects = grouping.tally, selection.rejects
     since, until = start.since, start.until
-    labels, strength = grouping.labels, grouping.strength
     catalogue = ReasonCatalogue(bundle.spec, bundle.manifest.stats)
     codes = catalogue.code_ids
-    spec = bundle.spec
     threshold = bundle.manifest.decision.threshold
-    mix, _ = cause_mix(explanation.code_contributions)
-    found = find_groups(mix, labels, codes)
-    total = max(len(events), 1)
-    shares = [g.members.size / total for g in found]
+    found = find_groups(tally.mix, tally.count, codes)
+    total = max(tally.events, 1)
+    shares = [g.size / total for g in found]
     tracked = track([g.signature for g in found], shares, start.previous)
 
     progress(f"step 5/{STEPS}: describing {len(found)} groups and simulating their fixes")
-    entity = events[spec.entity] if spec.entity and spec.entity in events.columns else None
-    context = GroupContext(
-        bundle=bundle, catalogue=catalogue, table=events, explanation=explanation,
-        times=times, reference=reference, entity=entity,
-    )
+    targets: list[list[Target]] = [[] for _ in range(grouping.groups)]
+    for group in found:
+        targets[group.label] = fix_targets(catalogue, group.leading)
+    avoidable = slices.avoidable(targets)
     rows = []
     for position, group in enumerate(found):
         row = {
@@ -227,13 +268,13 @@ def finish_rootcause(
             "share": shares[position],
             "previous_share": tracked.previous_share[position],
         }
-        row.update(group_row(context, group, strength))
+        row.update(group_row(catalogue, group, tally, targets[group.label],
+                             float(avoidable[group.label])))
         rows.append(row)
-    groups = _group_frame(rows, labels, len(events))
-    group_of = np.full(len(events), UNGROUPED, dtype=object)
+    groups = _group_frame(rows, tally.events - tally.grouped, tally.events)
+    group_ids = [""] * grouping.groups
     for position, group in enumerate(found):
-        group_of[group.members] = tracked.ids[position]
-    event_groups = _event_frame(explanation, group_of, strength, entity, times)
+        group_ids[group.label] = tracked.ids[position]
 
     summary = {
         "created": datetime.now(UTC).isoformat(timespec="seconds"),
@@ -245,18 +286,18 @@ def finish_rootcause(
             "time_column": selection.time_column,
             "since": since.isoformat() if since is not None else None,
             "until": until.isoformat() if until is not None else None,
-            "first_event": _iso(times.min()),
-            "last_event": _iso(times.max()),
+            "first_event": _iso(tally.first_event),
+            "last_event": _iso(tally.last_event),
         },
         "counts": {
             "rows_read": selection.rows_read,
             "rejected": len(rejects),
             "rows_in_window": selection.rows_in_window,
-            "events": len(events),
-            "grouped": int((labels >= 0).sum()),
-            "ungrouped": int((labels < 0).sum()),
+            "events": tally.events,
+            "grouped": tally.grouped,
+            "ungrouped": tally.events - tally.grouped,
             "groups": len(found),
-            "events_with_warnings": sum(1 for w in explanation.warnings if w),
+            "events_with_warnings": tally.warned,
         },
         "parameters": {
             **grouping.parameters,
@@ -267,7 +308,7 @@ def finish_rootcause(
         "previous": str(options.previous) if options.previous else None,
         "last_group_number": tracked.last_number,
         "groups": summary_groups(
-            tracked.ids, shares, [g.members.size for g in found],
+            tracked.ids, shares, [g.size for g in found],
             [r["label"] for r in rows], [g.signature for g in found],
         ),
         "gone": [
@@ -284,19 +325,28 @@ def finish_rootcause(
         summary=summary,
         groups=groups,
         heatmap=_heatmap(found, tracked.ids, codes),
-        weekly=_weekly(event_groups, times),
-        examples=_examples(found, tracked.ids, explanation, strength),
+        weekly=weekly_frame(tally.weekly, group_ids, UNGROUPED),
+        examples=_examples(found, tracked.ids, tally),
         caution=CAUTION,
     )
     with atomic_directory(out) as staging:
         write_table(escape_frame(groups), staging / GROUPS)
-        write_table(escape_frame(event_groups), staging / EVENT_GROUPS)
+        _write_frames(slices.event_frames(group_ids), staging / EVENT_GROUPS)
         htmlreport.write_report(report, staging / REPORT)
         write_rejects(rejects, staging / REJECTS)
         (staging / SUMMARY).write_text(
             json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n", "utf-8"
         )
-    return RootCauseResult(groups=groups, event_groups=event_groups, summary=summary)
+    return RootCauseResult(groups=groups, summary=summary, folder=out)
+
+
+def _write_frames(frames: Iterator[pd.DataFrame], path: Path) -> None:
+    """One CSV from consecutive frames (formula-like cells escaped), header once."""
+    with open(path, "w", encoding="utf-8", newline="") as handle:
+        first = True
+        for frame in frames:
+            escape_frame(frame).to_csv(handle, index=False, header=first)
+            first = False
 
 
 def _check_out(out: Path) -> None:
@@ -309,10 +359,9 @@ def _check_out(out: Path) -> None:
         )
 
 
-def _group_frame(rows: list[dict[str, Any]], labels: np.ndarray, events: int) -> pd.DataFrame:
+def _group_frame(rows: list[dict[str, Any]], ungrouped: int, events: int) -> pd.DataFrame:
     frame = pd.DataFrame(rows, columns=GROUP_COLUMNS)
     frame = frame.sort_values("events", ascending=False, kind="stable")
-    ungrouped = int((labels < 0).sum())
     tail = pd.DataFrame([{
         "group_id": UNGROUPED,
         "label": "ungrouped: no shared mix of causes",
@@ -340,20 +389,6 @@ GROUP_COLUMNS = [
 ]
 
 
-def _event_frame(explanation, group_of, strength, entity, times) -> pd.DataFrame:  # type: ignore[no-untyped-def]
-    columns: dict[str, Any] = {
-        "event_id": explanation.ids,
-        "group_id": group_of,
-        "membership_strength": np.round(strength, 4),
-        "probability": np.round(explanation.probability, 6),
-        "top_reason_codes": ["; ".join(r.code for r in reasons) for reasons in explanation.reasons],
-    }
-    if entity is not None:
-        columns["entity"] = entity.astype("string").to_numpy()
-    columns["event_time"] = [_iso(t) for t in times]
-    return pd.DataFrame(columns)
-
-
 def _heatmap(found, ids, codes) -> pd.DataFrame:  # type: ignore[no-untyped-def]
     """Groups x codes: each group's mean share of each code, codes used by any group only."""
     frame = pd.DataFrame(
@@ -364,26 +399,14 @@ def _heatmap(found, ids, codes) -> pd.DataFrame:  # type: ignore[no-untyped-def]
     return frame.sort_index().loc[:, frame.max(axis=0) >= 0.02]
 
 
-def _weekly(event_groups: pd.DataFrame, times: pd.Series) -> pd.DataFrame:
-    """Events per group and week (weeks start on Monday, UTC)."""
-    known = times.notna().to_numpy()
-    if not known.any():
-        return pd.DataFrame()
-    day = times[known].dt.tz_convert("UTC").dt.floor("D")
-    week = (day - pd.to_timedelta(day.dt.day_of_week, unit="D")).dt.tz_localize(None)
-    frame = pd.DataFrame({"group_id": event_groups["group_id"][known].to_numpy(), "week": week})
-    return frame.groupby(["week", "group_id"]).size().unstack(fill_value=0).sort_index()
-
-
-def _examples(found, ids, explanation, strength) -> list[htmlreport.Example]:  # type: ignore[no-untyped-def]
+def _examples(found, ids, tally) -> list[htmlreport.Example]:  # type: ignore[no-untyped-def]
+    """Each group's strongest member, shown in full."""
     out = []
     for group, group_id in sorted(zip(found, ids, strict=True), key=lambda pair: pair[1]):
-        row = int(group.members[np.argmax(strength[group.members])])
+        best = tally.examples[group.label][0]
         out.append(htmlreport.Example(
-            group_id=group_id,
-            event_id=explanation.ids[row],
-            probability=float(explanation.probability[row]),
-            reasons=[(r.code, r.text, r.contribution) for r in explanation.reasons[row]],
+            group_id=group_id, event_id=best.event_id, probability=best.probability,
+            reasons=best.reasons,
         ))
     return out
 

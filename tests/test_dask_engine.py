@@ -22,7 +22,7 @@ from service import dask_engine
 from service.dask_engine import DaskSettings
 from service.dask_rootcause import run_rootcause_dask
 from service.explain import Explainer
-from service.rootcause_run import EVENT_GROUPS, GROUPS, run_rootcause
+from service.rootcause_run import EVENT_GROUPS, GROUPS, REJECTS, run_rootcause
 
 PARTS = 4
 EXPLAIN_ROWS = 12_000
@@ -75,16 +75,126 @@ def test_explain_contributions_are_identical(  # type: ignore[no-untyped-def]
     assert (tmp_path / "scores.rejects.csv").is_file()
 
 
-def test_rootcause_groups_are_identical_when_the_sample_holds_every_event(  # type: ignore[no-untyped-def]
-    demo_bundle, demo_parquet, parts, cluster, tmp_path
+BROKEN_ROWS = 3000
+BLOCK = "64KiB"  # the broken-rows CSV (about 450 KiB) spans several blocks
+
+
+def _break_lines(lines: list[bytes]) -> list[int]:
+    """Break a few data lines in place, as a bad export might; their 1-based line numbers."""
+    lines[5] += b",surplus,fields"  # too many fields, in the first block (header = line 1)
+    lines[1200] = lines[1200].replace(b",", b",\xff", 1)  # not UTF-8
+    lines[2000] = b"only,three,fields"
+    lines[-1] += b",one more"  # the file's last line
+    return [6, 1201, 2001, len(lines)]
+
+
+def _explain(bundle_path: Path, source: str, out: Path, extra: list[str]) -> int:
+    return main(["explain", "--bundle", str(bundle_path), "--input", source, "--out", str(out),
+                 *extra])
+
+
+def _assert_same_files(local: Path, dask_out: Path) -> None:
+    # The local engine is the reference: the Dask engine must leave the same output and rejects.
+    assert dask_out.read_bytes() == local.read_bytes()
+    local_rejects = local.with_name("scores.rejects.csv")
+    assert dask_out.with_name("scores.rejects.csv").read_bytes() == local_rejects.read_bytes()
+
+
+def test_explain_sets_broken_rows_aside_as_the_local_engine_does(  # type: ignore[no-untyped-def]
+    demo_bundle, demo_table, cluster, tmp_path, monkeypatch, capsys
 ) -> None:
-    local = run_rootcause(demo_bundle, demo_parquet, tmp_path / "local")
+    source = tmp_path / "events.csv"
+    lines = demo_table.iloc[:BROKEN_ROWS].to_csv(index=False).encode().split(b"\n")[:-1]
+    broken = _break_lines(lines)
+    source.write_bytes(b"\n".join(lines) + b"\n")
+    monkeypatch.setattr(dask_engine, "CSV_BLOCK", BLOCK)
+    assert len(dask_engine.read_partitions(source, ["snapshot_id"]).parts) >= 4
+    (tmp_path / "local").mkdir()
+    (tmp_path / "dask").mkdir()
+    local, dask_out = tmp_path / "local" / "scores.csv", tmp_path / "dask" / "scores.csv"
+    assert _explain(demo_bundle.path, str(source), local, []) == 0
+    local_said = capsys.readouterr().out
+    assert _explain(demo_bundle.path, str(source), dask_out,
+                    ["--engine", "dask", "--scheduler", cluster.scheduler_address]) == 0
+    dask_said = capsys.readouterr().out
+    _assert_same_files(local, dask_out)
+    rejects = pd.read_csv(tmp_path / "dask" / "scores.rejects.csv")
+    # Row numbers are line numbers, header = line 1 (the README's rejects format).
+    assert rejects["row"].tolist() == broken
+    assert len(pd.read_csv(dask_out)) == BROKEN_ROWS - len(broken)
+    assert f"rejected: {len(broken)} unreadable rows" in local_said
+    assert f"rejected: {len(broken)} unreadable rows" in dask_said
+
+
+def test_a_glob_of_csv_files_is_numbered_as_one_file(  # type: ignore[no-untyped-def]
+    demo_bundle, demo_table, cluster, tmp_path, monkeypatch
+) -> None:
+    lines = demo_table.iloc[:BROKEN_ROWS].to_csv(index=False).encode().split(b"\n")[:-1]
+    broken = _break_lines(lines)
+    split = 1000  # in the middle of a block, after the first broken line
+    (tmp_path / "in").mkdir()
+    # The first file ends without a line break; the second repeats the header.
+    (tmp_path / "in" / "a.csv").write_bytes(b"\n".join(lines[:split]))
+    (tmp_path / "in" / "b.csv").write_bytes(b"\n".join([lines[0], *lines[split:]]) + b"\n")
+    whole = tmp_path / "whole.csv"  # the same rows as one file: what the local engine reads
+    whole.write_bytes(b"\n".join(lines) + b"\n")
+    monkeypatch.setattr(dask_engine, "CSV_BLOCK", BLOCK)
+    (tmp_path / "local").mkdir()
+    (tmp_path / "dask").mkdir()
+    local, dask_out = tmp_path / "local" / "scores.csv", tmp_path / "dask" / "scores.csv"
+    assert _explain(demo_bundle.path, str(whole), local, []) == 0
+    assert _explain(demo_bundle.path, str(tmp_path / "in" / "*.csv"), dask_out,
+                    ["--engine", "dask", "--scheduler", cluster.scheduler_address]) == 0
+    _assert_same_files(local, dask_out)
+    assert pd.read_csv(tmp_path / "dask" / "scores.rejects.csv")["row"].tolist() == broken
+
+
+def test_block_offsets_add_up_the_earlier_spans() -> None:
+    assert dask_engine.block_offsets([428, 429, 0, 7]).tolist() == [0, 428, 857, 857]
+    assert dask_engine.block_offsets([]).tolist() == []
+
+
+def _both_engines(bundle, local_input, dask_input, cluster, tmp_path):  # type: ignore[no-untyped-def]
+    """``rootcause`` locally into tmp_path/local, and with --engine dask into tmp_path/dask."""
+    local = run_rootcause(bundle, local_input, tmp_path / "local")
     code = main([
-        "rootcause", "--bundle", str(demo_bundle.path), "--events", str(parts),
+        "rootcause", "--bundle", str(bundle.path), "--events", str(dask_input),
         "--out", str(tmp_path / "dask"), "--engine", "dask",
         "--scheduler", cluster.scheduler_address,
     ])
     assert code == 0
+    return local
+
+
+def test_rootcause_sets_broken_and_bad_rows_aside_as_the_local_engine_does(  # type: ignore[no-untyped-def]
+    demo_bundle, demo_table, cluster, tmp_path, monkeypatch
+) -> None:
+    rows = 12_000  # about 350 events: groups form
+    lines = demo_table.iloc[:rows].to_csv(index=False).encode().split(b"\n")[:-1]
+    broken = _break_lines(lines)
+    header = lines[0].split(b",")
+    cells = lines[7000].split(b",")
+    cells[header.index(b"compressor_duty_pct")] = b"abc"  # a cell of the wrong type
+    lines[7000] = b",".join(cells)
+    source = tmp_path / "events.csv"
+    source.write_bytes(b"\n".join(lines) + b"\n")
+    monkeypatch.setattr(dask_engine, "CSV_BLOCK", "256KiB")
+    assert len(dask_engine.read_partitions(source, ["snapshot_id"]).parts) >= 4
+    local = _both_engines(demo_bundle, source, source, cluster, tmp_path)
+    # The local engine is the reference: same rejects (line numbers, reasons, cells), same
+    # groups and event groups.
+    for name in (REJECTS, GROUPS, EVENT_GROUPS):
+        pd.testing.assert_frame_equal(pd.read_csv(tmp_path / "local" / name),
+                                      pd.read_csv(tmp_path / "dask" / name))
+    rejects = pd.read_csv(tmp_path / "dask" / REJECTS)
+    assert sorted(rejects["row"]) == sorted([*broken, 7001])
+    assert local.summary["counts"]["groups"] > 0
+
+
+def test_rootcause_groups_are_identical_when_the_sample_holds_every_event(  # type: ignore[no-untyped-def]
+    demo_bundle, demo_parquet, parts, cluster, tmp_path
+) -> None:
+    local = _both_engines(demo_bundle, demo_parquet, parts, cluster, tmp_path)
     assert sorted(p.name for p in (tmp_path / "local").iterdir()) == sorted(
         p.name for p in (tmp_path / "dask").iterdir()
     )
@@ -148,3 +258,46 @@ def test_scheduler_needs_the_dask_engine(demo_bundle, tmp_path, capsys) -> None:
     assert capsys.readouterr().err.strip() == (
         "causeline explain: error: --scheduler needs --engine dask"
     )
+
+
+def test_client_state_does_not_grow_with_the_events(  # type: ignore[no-untyped-def]
+    demo_bundle, parts, cluster, tmp_path, monkeypatch
+) -> None:
+    """The issue's memory rule: what the client holds is bounded, not proportional to events.
+
+    Three times the events (the same partitions three times over, new ids) must leave the
+    client's state at the end of the distributed steps (counts, rejects, the reference sample
+    and the combined group tallies handed to the shared finishing step) about the same size,
+    where per-event data would triple it.
+    """
+    import pickle
+
+    from service import dask_rootcause, rootcause_tally
+
+    monkeypatch.setattr(rootcause_tally, "DRIVER_SAMPLE", 50)
+    sizes: dict[str, int] = {}
+    finish = dask_rootcause.finish_rootcause
+
+    def measured(bundle, path, out, options, start, selection, grouping, slices, progress):  # type: ignore[no-untyped-def]
+        sizes[out.name] = len(pickle.dumps((selection, grouping)))
+        return finish(bundle, path, out, options, start, selection, grouping, slices, progress)
+
+    monkeypatch.setattr(dask_rootcause, "finish_rootcause", measured)
+    tripled = tmp_path / "tripled"
+    tripled.mkdir()
+    for copy in range(3):
+        for part in sorted(parts.iterdir()):
+            table = pd.read_parquet(part)
+            table["snapshot_id"] = table["snapshot_id"].astype(str) + f"-{copy}"
+            table.to_parquet(tripled / f"{copy}-{part.name}", index=False)
+    options = dask_rootcause.RootCauseOptions(min_group_size=30)
+    settings = DaskSettings(scheduler=cluster.scheduler_address)
+    once = run_rootcause_dask(demo_bundle, parts, tmp_path / "once", options, settings,
+                              sample_size=500, reference_size=500)
+    thrice = run_rootcause_dask(demo_bundle, tripled, tmp_path / "thrice", options, settings,
+                                sample_size=500, reference_size=500)
+    assert thrice.summary["counts"]["events"] == 3 * once.summary["counts"]["events"]
+    assert once.summary["counts"]["events"] > 500  # the samples are full in both runs
+    assert sizes["thrice"] < 1.3 * sizes["once"], sizes
+    # And the outputs still hold every event.
+    assert len(thrice.event_groups) == thrice.summary["counts"]["events"]
