@@ -81,6 +81,12 @@ def _parser() -> argparse.ArgumentParser:
     rootcause.add_argument("--previous", type=Path, help="previous run's folder, to keep ids")
     rootcause.add_argument("--min-group-size", type=int, help="override the smallest group size")
     _engine_arguments(rootcause)
+    rootcause.add_argument(
+        "--fit-sample", type=int, metavar="N",
+        help="with --engine dask: fit the groups on at most N events with a cause (default "
+        "50000), place the rest by prediction; larger agrees better with the local engine "
+        "and costs the client more time and memory",
+    )
     rootcause.set_defaults(run=_rootcause)
 
     serve = commands.add_parser(
@@ -218,12 +224,14 @@ def _rootcause(args: argparse.Namespace) -> int:
         predicted=args.predicted, since=args.since, until=args.until,
         previous=args.previous, min_group_size=args.min_group_size,
     )
+    if args.fit_sample is not None and (args.engine != "dask" or args.fit_sample < 100):
+        raise CauselineError("--fit-sample needs --engine dask and at least 100 events")
     if _use_dask(args):
-        from service.dask_rootcause import run_rootcause_dask
+        from service.dask_rootcause import SAMPLE_SIZE, run_rootcause_dask
 
         result = run_rootcause_dask(
             load_bundle(args.bundle), args.events, args.out, options, _dask_settings(args),
-            progress=_progress,
+            progress=_progress, sample_size=args.fit_sample or SAMPLE_SIZE,
         )
     else:
         result = run_rootcause(

@@ -7,6 +7,7 @@ worker is the same either way. The benchmark (bench/rootcause.py) runs real work
 
 from __future__ import annotations
 
+import json
 import socket
 from pathlib import Path
 
@@ -301,3 +302,22 @@ def test_client_state_does_not_grow_with_the_events(  # type: ignore[no-untyped-
     assert sizes["thrice"] < 1.3 * sizes["once"], sizes
     # And the outputs still hold every event.
     assert len(thrice.event_groups) == thrice.summary["counts"]["events"]
+
+
+def test_fit_sample_flag(demo_bundle, parts, cluster, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    out = tmp_path / "dask"
+    assert main([
+        "rootcause", "--bundle", str(demo_bundle.path), "--events", str(parts), "--out", str(out),
+        "--engine", "dask", "--scheduler", cluster.scheduler_address, "--fit-sample", "1000",
+    ]) == 0
+    summary = json.loads((out / "summary.json").read_text("utf-8"))
+    assert summary["parameters"]["sample_size"] == 1000
+    assert summary["parameters"]["sampled_events"] == 1000 < summary["counts"]["events"]
+    capsys.readouterr()
+    assert main([
+        "rootcause", "--bundle", str(demo_bundle.path), "--events", str(parts),
+        "--out", str(tmp_path / "local"), "--fit-sample", "1000",
+    ]) == 2
+    assert capsys.readouterr().err.strip().endswith(
+        "--fit-sample needs --engine dask and at least 100 events"
+    )
