@@ -48,7 +48,7 @@ def _parser() -> argparse.ArgumentParser:
     build.set_defaults(run=_build)
 
     explain = commands.add_parser("explain", help="score events and attach reason codes")
-    explain.add_argument("--bundle", required=True, type=Path)
+    explain.add_argument("--bundle", required=True, type=Path, help="a trained bundle folder")
     explain.add_argument("--input", type=Path, help="CSV, JSONL or Parquet")
     explain.add_argument("--out", required=True, type=Path, help="CSV, JSONL or Parquet")
     explain.add_argument("--top", type=int, default=None, help="reason codes per event")
@@ -66,7 +66,7 @@ def _parser() -> argparse.ArgumentParser:
     explain.set_defaults(run=_explain)
 
     rootcause = commands.add_parser("rootcause", help="group events into root-cause groups")
-    rootcause.add_argument("--bundle", required=True, type=Path)
+    rootcause.add_argument("--bundle", required=True, type=Path, help="a trained bundle folder")
     rootcause.add_argument(
         "--events", required=True, type=Path,
         help="CSV, JSONL or Parquet table, or a prediction-log folder (needs --predicted)",

@@ -231,7 +231,7 @@ def run_rootcause_dask(
     bundle_path = str(Path(bundle.path).resolve())
     width = len(spec.feature_names)
     progress(f"step 1-3/{STEPS}: reading, selecting and explaining events "
-             f"({len(source.parts)} partitions)")
+             f"({len(source.parts)} partition{'s' if len(source.parts) != 1 else ''})")
     with dask_client(settings) as client:
         # Step 1's results stay on the workers; only their summaries come here.
         selected = [

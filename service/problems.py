@@ -104,7 +104,8 @@ def validation_errors(exc: RequestValidationError) -> list[FieldError]:
         event = None
         if len(location) >= 2 and location[0] == "events" and isinstance(location[1], int):
             event = location[1]
-            location = location[2:3]  # the field; deeper parts name pydantic's union members
+            # The field; deeper parts name pydantic's union members. No field: the event itself.
+            location = location[2:3] or ["events"]
         field = ".".join(str(part) for part in location) or "body"
         out.append(FieldError(event=event, field=field, message=_message(error)))
     return out
@@ -116,6 +117,8 @@ def _message(error: Mapping[str, Any]) -> str:
         return "field is required"
     if kind == "extra_forbidden":
         return "unknown field"
+    if kind in {"model_type", "dict_type", "model_attributes_type"}:
+        return "expected a JSON object"  # pydantic's own text names internal classes
     return str(error.get("msg", "invalid value"))
 
 

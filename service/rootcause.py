@@ -114,4 +114,6 @@ def find_groups(mix_sums: np.ndarray, counts: np.ndarray, codes: Sequence[str]) 
 
 def label_for(leading: Sequence[str]) -> str:
     """A readable name from the leading codes, e.g. 'condenser fouled + store warm'."""
-    return " + ".join(code.removeprefix("F_").lower().replace("_", " ") for code in leading[:2])
+    return " + ".join(
+        " ".join(code.removeprefix("F_").lower().replace("_", " ").split()) for code in leading[:2]
+    )

@@ -215,7 +215,8 @@ def run_rootcause(
         rows_read=len(source.table) + len(source.rejects), rows_in_window=len(table),
     )
     grouping = Grouping(groups, {
-        "min_cluster_size": finder.min_cluster_size_, "min_samples": finder.min_samples_,
+        "engine": "local", "min_cluster_size": finder.min_cluster_size_,
+        "min_samples": finder.min_samples_,
     }, tally_slice(part, groups, explainer.catalogue))
     return finish_rootcause(bundle, events_path, out, options, start, selection, grouping,
                             LocalSlices(bundle, part, reference), progress)
@@ -374,8 +375,12 @@ def _group_frame(rows: list[dict[str, Any]], ungrouped: int, events: int) -> pd.
     frame = tail if frame.empty else pd.concat([frame, tail], ignore_index=True)
     for column in ("share", "previous_share"):
         frame[column] = frame[column].astype(float).round(4)
-    for column in [c for c in GROUP_COLUMNS if c.endswith(("_contribution", "_estimate"))]:
+    for column in [c for c in GROUP_COLUMNS if c.endswith("_contribution")]:
         frame[column] = frame[column].astype(float).round(3)
+    # A count of events, estimated: tenths are as far as it can be read.
+    frame["events_avoidable_model_estimate"] = (
+        frame["events_avoidable_model_estimate"].astype(float).round(1)
+    )
     return frame.reset_index(drop=True)
 
 

@@ -297,7 +297,10 @@ def _weeks(times: pd.Series) -> np.ndarray:
 
 
 def _top(part: EventSlice, members: np.ndarray) -> np.ndarray:
-    return members[np.argsort(-part.strength[members], kind="stable")[:EXAMPLES]]
+    """The members :func:`_strongest` would pick from this slice."""
+    probability = part.explanation.probability[members]
+    order = np.lexsort((-probability, -part.strength[members]))  # stable: input order last
+    return members[order[:EXAMPLES]]
 
 
 def _example(part: EventSlice, row: int) -> Example:
@@ -312,7 +315,9 @@ def _example(part: EventSlice, row: int) -> Example:
 
 
 def _strongest(examples: Iterable[Example]) -> list[Example]:
-    return sorted(examples, key=lambda e: (-e.strength, e.order))[:EXAMPLES]
+    """Most firmly inside the group first; among equals (many hold strength 1), the events the
+    model scored highest, whose reasons show the group's cause most clearly; then input order."""
+    return sorted(examples, key=lambda e: (-e.strength, -e.probability, e.order))[:EXAMPLES]
 
 
 def _bottom(keys: np.ndarray, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

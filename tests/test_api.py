@@ -342,7 +342,9 @@ def test_body_that_is_not_json_media(client: TestClient, openapi: OpenAPICheck,
 def test_body_of_the_wrong_shape(client: TestClient, openapi: OpenAPICheck,
                                  events: list[dict]) -> None:
     errors = refused(post_raw(client, b'[1, 2]'), openapi)
-    assert [e["field"] for e in errors] == ["body"]
+    assert errors == [{"field": "body", "message": "expected a JSON object"}]
+    errors = refused(client.post("/v1/score", json={"events": [events[0], 1]}), openapi)
+    assert errors == [{"event": 1, "field": "events", "message": "expected a JSON object"}]
     errors = refused(client.post("/v1/score", json={"events": events[:1], "extra": 1,
                                                     "model": 3}), openapi)
     assert {(e["field"], e["message"]) for e in errors} >= {("extra", "unknown field")}
