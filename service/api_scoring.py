@@ -151,7 +151,7 @@ def log_records(
             "probability": result["probability"],
             "decision": result["decision"],
             "reasons": [reason["code"] for reason in result["reasons"]],
-            "event": dict(event),
+            "event": event,  # read-only from here on: the log renders it as it is
         }
         for event, result in zip(events, results, strict=True)
     ]

@@ -105,12 +105,9 @@ class ReasonCatalogue:
         # A stable sort keeps catalogue order among ties, so rankings are reproducible.
         order = np.argsort(-code_contributions, axis=1, kind="stable")[:, :k]
         values = code_contributions[np.arange(order.shape[0])[:, None], order]
-        keep = values > min_contribution
         return [
-            [(c, v) for c, v, ok in zip(row_o, row_v, row_k, strict=True) if ok]
-            for row_o, row_v, row_k in zip(
-                order.tolist(), values.tolist(), keep.tolist(), strict=True
-            )
+            [(c, v) for c, v in zip(row_o, row_v, strict=True) if v > min_contribution]
+            for row_o, row_v in zip(order.tolist(), values.tolist(), strict=True)
         ]
 
     def decode(self, name: str, value: float) -> Value:
