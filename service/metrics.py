@@ -80,13 +80,17 @@ class Metrics:
             "causeline_prediction_log_records", "Scored events written to the log", registry=r
         )
         self._reason_series: dict[tuple[str, str], Any] = {}
+        self._events_series: dict[str, Any] = {}
         self.log_queue = Gauge(
             "causeline_prediction_log_queue_records", "Records waiting to be written", registry=r
         )
 
     def count_scored(self, model: str, events: int, codes: list[str]) -> None:
         """Events scored by ``model`` and the reason codes they were given."""
-        self.events.labels(model).inc(events)
+        scored = self._events_series.get(model)
+        if scored is None:
+            scored = self._events_series[model] = self.events.labels(model)
+        scored.inc(events)
         for code in codes:
             series = self._reason_series.get((model, code))
             if series is None:  # labels() locks and builds a key: once per model and code
