@@ -38,6 +38,7 @@ import pandas as pd
 
 from service.bundle import Bundle
 from service.dask_engine import (
+    AHEAD,
     Block,
     DaskSettings,
     dask_client,
@@ -305,8 +306,8 @@ class _DaskSlices:
         frames: list[pd.DataFrame] = []
         tasks = [dask.delayed(event_frame)(f, group_ids, UNGROUPED) for f in self.parts]
         # A few partitions ahead at a time: each frame is written and dropped before the next.
-        for start in range(0, len(tasks), 4):
-            stream_ordered(self.client, tasks[start:start + 4],
+        for start in range(0, len(tasks), AHEAD):
+            stream_ordered(self.client, tasks[start:start + AHEAD],
                            lambda _, frame: frames.append(frame))
             yield from frames
             frames.clear()

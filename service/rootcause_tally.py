@@ -274,15 +274,6 @@ def weekly_frame(
                              fill_value=0).sort_index()
 
 
-def combine(tallies: Iterable[Tally]) -> Tally:
-    """All slices' tallies, added in input order."""
-    iterator = iter(tallies)
-    total = next(iterator)
-    for tally in iterator:
-        total.add(tally)
-    return total
-
-
 def _entity(part: EventSlice) -> pd.Series | None:
     if part.entity and part.entity in part.events.columns:
         return part.events[part.entity].reset_index(drop=True)
