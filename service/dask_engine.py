@@ -286,8 +286,7 @@ def _explain_part(
     """On a worker: one partition's output and its counts; its rejects are passed on."""
     explainer = worker_explainer(bundle_path, top)
     bundle = explainer.bundle
-    table = as_text(block.table.reset_index(drop=True), [bundle.spec.id])
-    explanation = explainer.explain(table)
+    explanation = explainer.explain(block.table)  # ids already text (read_partitions)
     threshold = bundle.manifest.decision.threshold
     names = bundle.spec.feature_names
     if kind == "jsonl":

@@ -64,13 +64,13 @@ from service.rootcause_run import (
     start_rootcause,
 )
 from service.rootcause_tally import (
+    SEED,
     EventSlice,
     Tally,
     avoidable_in_slice,
     event_frame,
     tally_slice,
 )
-from service.tables import as_text
 
 # HDBSCAN's fit grows faster than linearly with points; on the demo 13,000 events fit in about
 # 3 s on one core, 50,000 in well under a minute. Measured on the demo, grouping a sample of
@@ -82,7 +82,6 @@ SAMPLE_SIZE = 50_000
 REFERENCE_SIZE = 200_000
 # A sampled fit never asks for groups smaller than this (HDBSCAN with min_samples 3).
 SAMPLED_MIN_GROUP = 5
-SEED = 20240601
 
 
 @dataclass(frozen=True)
@@ -143,8 +142,7 @@ def _select_part(
     explainer = worker_explainer(bundle_path)
     bundle = explainer.bundle
     spec = bundle.spec
-    table = as_text(block.table.reset_index(drop=True),
-                    [c for c in (spec.id, spec.entity) if c])
+    table = block.table  # ids and entities already text (read_partitions)
     source = EventInput(table, spec.id, spec.time, False, block.rows, block.rejects)
     times = event_times(source)
     window = window_mask(times, since, until, spec.time) if len(table) else np.ones(0, bool)

@@ -8,7 +8,7 @@ table, batch jobs report the rows, the HTTP layer answers 422.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -99,10 +99,6 @@ class FeatureBuilder:
             else:
                 needed.append(feature.source_column)
         return list(dict.fromkeys(needed))
-
-    def missing_columns(self, columns: Iterable[str]) -> list[str]:
-        present = set(columns)
-        return [column for column in self.required_columns if column not in present]
 
     def transform(self, table: Table) -> FeatureMatrix:
         """Build the feature matrix; raises :class:`DataError` only for missing columns.

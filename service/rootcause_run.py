@@ -42,6 +42,7 @@ from service.rootcause_input import (
     window_mask,
 )
 from service.rootcause_tally import (
+    SEED,
     EventSlice,
     Tally,
     avoidable_in_slice,
@@ -74,7 +75,6 @@ CAUTION = (
     "licensed technician inspect the equipment before acting."
 )
 STEPS = 6
-SAMPLE_SEED = 20240601  # draws the bounded samples of group members (see rootcause_tally)
 
 
 @dataclass(frozen=True)
@@ -206,7 +206,7 @@ def run_rootcause(
     finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mix, has_cause)
     part = EventSlice(
         index=0, events=events, times=times, explanation=explanation,
-        keys=np.random.default_rng(SAMPLE_SEED).random(len(events)), entity=bundle.spec.entity,
+        keys=np.random.default_rng(SEED).random(len(events)), entity=bundle.spec.entity,
         labels=finder.labels_, strength=finder.strength_,
     )
     groups = int(finder.labels_.max(initial=-1)) + 1
