@@ -19,7 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from service.metrics import Metrics
-from service.predlog import PredictionLogWriter
+from service.predlog import PredictionLogWriter, render_lines
 
 LINGER_SECONDS = 0.1
 WAKE_RECORDS = 1024
@@ -41,7 +41,7 @@ class BackgroundLog:
         self.error: str | None = None
         self.written = 0
         self.dropped = 0
-        self._queue: deque[Sequence[Mapping[str, Any]]] = deque()
+        self._queue: deque[str] = deque()  # rendered lines, a request's records each
         self._pending = 0
         self._condition = threading.Condition()
         self._stopping = False
@@ -56,14 +56,20 @@ class BackgroundLog:
         self._thread.start()
 
     def submit(self, records: Sequence[Mapping[str, Any]]) -> bool:
-        """Queue ``records`` without blocking; False (and counted) when the queue is full."""
+        """Queue ``records`` without blocking; False (and counted) when the queue is full.
+
+        They are rendered here, so the queue holds one string per request rather than the
+        events' objects: holding those until the writer's next turn cost the serving loop
+        more (memory it could not reuse, more garbage collection) than rendering them.
+        """
+        lines = render_lines(records)
         with self._condition:
             if self._stopping or self._pending + len(records) > self.capacity:
                 self.dropped += len(records)
                 reason = "stopped" if self._stopping else "queue full"
                 self.metrics.log_dropped.labels(reason).inc(len(records))
                 return False
-            self._queue.append(records)
+            self._queue.append(lines)
             self._pending += len(records)
             self.metrics.log_queue.set(self._pending)
             # Waking the writer for every request makes it fight the event loop for the GIL;
@@ -86,13 +92,13 @@ class BackgroundLog:
             with self._condition:
                 if not self._stopping:
                     self._condition.wait(min(self.fsync_seconds, LINGER_SECONDS))
-                batches = list(self._queue)
+                pending = "".join(self._queue)
                 self._queue.clear()
                 self._pending = 0
                 self.metrics.log_queue.set(0)
                 stopping = self._stopping
-            if batches:
-                self._write([record for batch in batches for record in batch])
+            if pending:
+                self._write(pending)
             if stopping or time.monotonic() - last_sync >= self.fsync_seconds:
                 self._sync()
                 last_sync = time.monotonic()
@@ -100,19 +106,20 @@ class BackgroundLog:
                 self._close()
                 return
 
-    def _write(self, records: list[Mapping[str, Any]]) -> None:
+    def _write(self, lines: str) -> None:
+        records = lines.count("\n")
         try:
             if self._writer is None:
                 self._writer = PredictionLogWriter(self.folder)
-            self.written += self._writer.append(records)
-            self.metrics.log_written.inc(len(records))
+            self.written += self._writer.append_lines(lines)
+            self.metrics.log_written.inc(records)
             if self.error is not None:
                 logger.info("prediction log %s: writing again", self.folder)
             self.error = None
         except (OSError, ValueError) as exc:
             self._fail(exc)
-            self.dropped += len(records)
-            self.metrics.log_dropped.labels("write failed").inc(len(records))
+            self.dropped += records
+            self.metrics.log_dropped.labels("write failed").inc(records)
 
     def _sync(self) -> None:
         if self._writer is None:

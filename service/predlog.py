@@ -43,8 +43,10 @@ class PredictionLogWriter:
 
     def append(self, records: Iterable[Mapping[str, Any]]) -> int:
         """Write ``records`` as whole lines, flushed to the OS; returns how many were written."""
-        # pydantic-core's serializer: several times faster than json.dumps, same compact UTF-8.
-        lines = "".join(to_json(r, inf_nan_mode="null").decode() + "\n" for r in records)
+        return self.append_lines(render_lines(records))
+
+    def append_lines(self, lines: str) -> int:
+        """Write lines from :func:`render_lines` as they are; returns how many were written."""
         if not lines:
             return 0
         with self._lock:
@@ -78,6 +80,12 @@ class PredictionLogWriter:
         name = f"segment-{stamp}-{os.getpid()}-{self._count:04d}.jsonl"
         self._handle = open(self.folder / name, "a", encoding="utf-8")  # noqa: SIM115
         return self._handle
+
+
+def render_lines(records: Iterable[Mapping[str, Any]]) -> str:
+    """Records as log lines, each ending in a newline."""
+    # pydantic-core's serializer: several times faster than json.dumps, same compact UTF-8.
+    return "".join(to_json(r, inf_nan_mode="null").decode() + "\n" for r in records)
 
 
 def is_prediction_log(path: Path) -> bool:
