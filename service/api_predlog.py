@@ -47,6 +47,8 @@ class BackgroundLog:
         self._stopping = False
         self._writer: PredictionLogWriter | None = None
         self._thread = threading.Thread(target=self._run, name="prediction-log", daemon=True)
+        # Read when metrics are scraped, not set on every request.
+        metrics.log_queue.set_function(lambda: self._pending)
 
     @property
     def failing(self) -> bool:
@@ -71,7 +73,6 @@ class BackgroundLog:
                 return False
             self._queue.append(lines)
             self._pending += len(records)
-            self.metrics.log_queue.set(self._pending)
             # Waking the writer for every request makes it fight the event loop for the GIL;
             # it drains on its own every LINGER_SECONDS, or now when the queue grows large.
             if self._pending >= WAKE_RECORDS:
@@ -95,7 +96,6 @@ class BackgroundLog:
                 pending = "".join(self._queue)
                 self._queue.clear()
                 self._pending = 0
-                self.metrics.log_queue.set(0)
                 stopping = self._stopping
             if pending:
                 self._write(pending)

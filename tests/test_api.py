@@ -548,6 +548,8 @@ def test_full_log_queue_drops_and_counts(tmp_path: Path) -> None:
     record = {"model": "m", "event": {"x": 1}}
     assert log.submit([record, record])  # the thread is not started: nothing drains
     assert not log.submit([record, record])
+    queued = metrics.exposition()[0].decode()
+    assert metric(queued, "causeline_prediction_log_queue_records") == 2
     log.start()
     log.stop()
     assert (log.written, log.dropped) == (2, 2)
@@ -555,6 +557,7 @@ def test_full_log_queue_drops_and_counts(tmp_path: Path) -> None:
     assert metric(text, "causeline_prediction_log_dropped_records_total", reason="queue full") == 2
     assert metric(text, "causeline_prediction_log_records_total") == 2
     assert len(read_prediction_log(tmp_path / "log")) == 2
+    assert metric(text, "causeline_prediction_log_queue_records") == 0
 
 
 # ---------------------------------------------------------------- bundle swap
