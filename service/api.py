@@ -17,7 +17,7 @@ import contextlib
 import logging
 import signal
 import threading
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Sequence
 from dataclasses import dataclass
 from typing import Annotated, Any
 
@@ -51,7 +51,7 @@ from service.api_online import online_event
 from service.api_predlog import BackgroundLog
 from service.api_requests import all_contributions, openapi_request, read_body
 from service.api_schema import EventSchema
-from service.api_scoring import Batcher, log_records
+from service.api_scoring import Batcher, Job, Scored, log_records
 from service.auth import ApiKeys, api_key_header, bearer, presented_key
 from service.errors import CauselineError
 from service.metrics import Metrics, MetricsMiddleware
@@ -92,7 +92,8 @@ class Service:
         )
         self.metrics = Metrics()
         self.registry = Registry(settings.bundle, settings.default_model)
-        self.batcher = Batcher(settings.batch_rows, self.metrics.batch_rows.observe)
+        self.batcher = Batcher(settings.batch_rows, self.metrics.batch_rows.observe,
+                               self.record_scored)
         folder = settings.prediction_log_folder
         self.log = None if folder is None else BackgroundLog(
             folder, self.metrics, settings.prediction_log_queue,
@@ -118,6 +119,21 @@ class Service:
             self.metrics.reloads.inc()
         logger.info("serving %s", ", ".join(f"{n} {v}" for n, v in served.versions().items()))
         return previous, served
+
+    def record_scored(self, model: Model, jobs: Sequence[Job], outcomes: Sequence[Scored]) -> None:
+        """Count and log one explained batch's events; refused requests are neither."""
+        events: list[Any] = []
+        results: list[dict[str, Any]] = []
+        for job, outcome in zip(jobs, outcomes, strict=True):
+            if not outcome.errors:
+                events += job.events
+                results += outcome.records
+        if not results:
+            return
+        codes = [reason["code"] for result in results for reason in result["reasons"]]
+        self.metrics.count_scored(model.name, len(results), codes)
+        if self.log is not None:
+            self.log.submit(log_records(model, events, results))
 
     def log_status(self) -> LogStatus:
         if self.log is None:
@@ -345,7 +361,7 @@ def _routes(app: FastAPI) -> None:
 async def _score(
     request: Request, name: str | None, events: list[dict[str, Any]], all_contributions: bool
 ) -> Response:
-    """The scoring both endpoints share: checks, batched explanation, counting and logging."""
+    """The scoring both endpoints share: checks and batched explanation (which counts and logs)."""
     service = _service(request)
     current = service.current
     assert current is not None
@@ -366,17 +382,9 @@ async def _score(
             422, f"{len(errors)} invalid field(s) in {len(events)} event(s)",
             "invalid-events", errors,
         )
-    _count(service, model, scored.records)
-    if service.log is not None:
-        service.log.submit(log_records(model, events, scored.records))
     body = {"model": {"name": model.name, "version": model.version},
             "results": scored.records}
     return FastJSONResponse(body)
-
-
-def _count(service: Service, model: Model, records: list[dict[str, object]]) -> None:
-    codes = [reason["code"] for record in records for reason in record["reasons"]]  # type: ignore[attr-defined]
-    service.metrics.count_scored(model.name, len(records), codes)
 
 
 def describe(model: Model, schema: EventSchema) -> ModelDescription:

@@ -10,6 +10,7 @@ batch equals what it would get alone.
 from __future__ import annotations
 
 import asyncio
+import logging
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -23,6 +24,8 @@ from service.registry import Model
 from service.report import explanation_records
 
 INLINE_ROWS = 64
+
+logger = logging.getLogger("causeline.service")
 
 
 @dataclass
@@ -45,14 +48,24 @@ class Scored:
     errors: list[FieldError]
 
 
+ScoredHook = Callable[[Model, Sequence[Job], Sequence[Scored]], None]
+
+
 class Batcher:
-    """Queues jobs and explains them in batches of up to ``max_rows`` events, one at a time."""
+    """Queues jobs and explains them in batches of up to ``max_rows`` events, one at a time.
+
+    ``observe`` is told each batch's number of events; ``scored`` gets each explained batch's
+    jobs and outcomes before their requests resume (the service counts and logs them there,
+    once per batch rather than once per request).
+    """
 
     def __init__(
-        self, max_rows: int = 64, observe: Callable[[float], None] | None = None
+        self, max_rows: int = 64, observe: Callable[[float], None] | None = None,
+        scored: ScoredHook | None = None,
     ) -> None:
         self.max_rows = max_rows
-        self._observe = observe  # told each batch's number of events
+        self._observe = observe
+        self._scored = scored
         self._pending: list[Job] = []
         self._running = False
         self._loop: asyncio.AbstractEventLoop | None = None
@@ -94,6 +107,11 @@ class Batcher:
                         if not job.future.done():
                             job.future.set_exception(exc)
                     continue
+                if self._scored is not None:
+                    try:
+                        self._scored(batch[0].model, batch, outcomes)
+                    except Exception:  # counting or logging never costs a client its answer
+                        logger.exception("recording a scored batch failed")
                 for job, outcome in zip(batch, outcomes, strict=True):
                     if not job.future.done():
                         job.future.set_result(outcome)
@@ -142,11 +160,12 @@ def log_records(
 ) -> list[dict[str, Any]]:
     """Prediction-log records (:mod:`service.predlog`'s format) for scored events."""
     logged_at = datetime.now(UTC).isoformat(timespec="milliseconds")
+    name, version = model.name, model.version
     return [
         {
             "logged_at": logged_at,
-            "model": model.name,
-            "version": model.version,
+            "model": name,
+            "version": version,
             "id": result["id"],
             "probability": result["probability"],
             "decision": result["decision"],

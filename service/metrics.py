@@ -6,6 +6,7 @@ With several uvicorn workers each process counts on its own; scrape one process 
 
 from __future__ import annotations
 
+import collections
 import time
 from collections.abc import Awaitable, Callable, MutableMapping
 from typing import Any
@@ -91,11 +92,11 @@ class Metrics:
         if scored is None:
             scored = self._events_series[model] = self.events.labels(model)
         scored.inc(events)
-        for code in codes:
+        for code, times in collections.Counter(codes).items():
             series = self._reason_series.get((model, code))
             if series is None:  # labels() locks and builds a key: once per model and code
                 series = self._reason_series[(model, code)] = self.reasons.labels(model, code)
-            series.inc()
+            series.inc(times)
 
     def set_models(self, models: dict[str, str]) -> None:
         """Replace the served-models gauge with ``{name: version}``."""

@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import asyncio
 import json
 import shutil
 import threading
 from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -226,6 +228,26 @@ def test_concurrent_requests_batched_together_equal_each_alone(
     assert bad.records == [] and bad.errors[0].field == "case_type"
     assert bad.errors[0].event == 0
     assert first.records + second.records == alone
+
+
+def test_a_failing_batch_hook_still_answers_every_request(
+    client: TestClient, events: list[dict]
+) -> None:
+    # The hook counts and logs; if it fails, the requests of its batch must still be answered.
+    model, schema = client.app.state.service.current.pick(None)
+    calls: list[int] = []
+
+    def broken_hook(*_: Any) -> None:
+        calls.append(1)
+        raise RuntimeError("log unavailable")
+
+    async def score_three() -> list[api_scoring.Scored]:
+        batcher = api_scoring.Batcher(scored=broken_hook)
+        requests = [batcher.score(model, schema, [event], False) for event in events[:3]]
+        return await asyncio.wait_for(asyncio.gather(*requests), timeout=60)
+
+    outcomes = asyncio.run(score_three())
+    assert calls and [len(outcome.records) for outcome in outcomes] == [1, 1, 1]
 
 
 # ---------------------------------------------------------------- input errors, one test each
@@ -510,6 +532,31 @@ def test_prediction_log_holds_every_scored_event(
     assert list(log["log_probability"]) == [r["probability"] for r in results]
     assert list(log["log_reasons"]) == [[x["code"] for x in r["reasons"]] for r in results]
     assert list(log["door_openings_per_h"]) == [e["door_openings_per_h"] for e in events]
+
+
+def test_concurrent_requests_are_logged_and_counted_only_when_scored(
+    make_client: Callable[..., TestClient], events: list[dict], tmp_path: Path
+) -> None:
+    # Concurrent requests may share one explanation call, and the service counts and logs per
+    # call: a request refused there (an unknown category) must still be left out of both.
+    client = make_client()
+    bad = {**events[0], "case_type": "igloo"}
+    bodies = [[bad] if position % 3 == 0 else [event] for position, event in enumerate(events)]
+    with ThreadPoolExecutor(8) as pool:
+        answers = list(pool.map(lambda body: client.post("/v1/score", json={"events": body}),
+                                bodies))
+    scored = [a.json()["results"][0] for a in answers if a.status_code == 200]
+    assert sorted(a.status_code for a in answers) == sorted(
+        422 if body == [bad] else 200 for body in bodies)
+    text = client.get("/metrics").text
+    assert metric(text, "causeline_events_scored_total") == len(scored)
+    codes = [reason["code"] for result in scored for reason in result["reasons"]]
+    assert sum(metric(text, "causeline_reason_codes_issued_total", code=code)
+               for code in set(codes)) == len(codes)
+    client.__exit__(None, None, None)
+    log = read_prediction_log(tmp_path / "log")
+    assert sorted(log["log_id"]) == sorted(result["id"] for result in scored)
+    assert "igloo" not in set(log["case_type"])
 
 
 def test_unwritable_prediction_log_keeps_scoring_and_shows_in_readiness(
