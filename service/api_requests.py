@@ -16,6 +16,7 @@ from typing import Any, TypeVar
 from fastapi import Request
 from fastapi.exceptions import RequestValidationError
 from pydantic import BaseModel, ValidationError
+from starlette.requests import ClientDisconnect
 
 from service import api_json
 from service.problems import FieldError, Problem
@@ -31,7 +32,7 @@ async def read_body(request: Request, model: type[Model]) -> Model:
     if media is not None and not _is_json(media):
         raise Problem(415, f"the body is sent as {media[:60]!r}; send it as JSON with the "
                       "header Content-Type: application/json", "unsupported-media-type")
-    body = await request.body()
+    body = await _read(request)
     if not body.strip():
         raise RequestValidationError([{"type": "missing", "loc": ("body",), "msg": "required"}])
     try:
@@ -44,6 +45,18 @@ async def read_body(request: Request, model: type[Model]) -> Model:
         return model.model_validate(data)
     except ValidationError as exc:
         raise RequestValidationError(exc.errors(include_url=False)) from None
+
+
+async def _read(request: Request) -> bytes:
+    """The whole body, straight from ``receive`` (Starlette's stream adds an async generator)."""
+    chunks = []
+    while True:
+        message = await request.receive()
+        if message["type"] == "http.disconnect":
+            raise ClientDisconnect()
+        chunks.append(message.get("body", b""))
+        if not message.get("more_body", False):
+            return b"".join(chunks)
 
 
 def all_contributions(request: Request) -> bool:
