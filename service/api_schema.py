@@ -8,6 +8,7 @@ as :class:`service.problems.FieldError` naming the event and the field.
 from __future__ import annotations
 
 import math
+import sys
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -18,6 +19,8 @@ from service.features import RowProblem
 from service.problems import FieldError
 
 _ABSENT = object()
+# JSON integers have no size limit; past this one they cannot become a float64.
+LARGEST = sys.float_info.max
 
 
 class EventSchema:
@@ -50,11 +53,12 @@ class EventSchema:
             for name in self.required:
                 value = event.get(name, _ABSENT)
                 # The common cases first, cheaply: null, a finite number where a number
-                # belongs (NaN and infinity fail the comparison), text where text belongs.
+                # belongs (NaN, infinity and huge integers fail the comparison), text where
+                # text belongs.
                 kind = type(value)
                 if value is None or (
                     (kind is str) if name in self.text
-                    else (kind is int or (kind is float and -math.inf < value < math.inf))
+                    else ((kind is int or kind is float) and -LARGEST <= value <= LARGEST)
                 ):
                     continue
                 if value is _ABSENT:
@@ -87,6 +91,8 @@ class EventSchema:
             return "NaN is not a JSON number; send null for an unknown value"
         if isinstance(value, float) and math.isinf(value):
             return "Infinity is not a JSON number; send a finite number"
+        if not -LARGEST <= value <= LARGEST:
+            return f"the number is out of range (at most {LARGEST:.4g} in size)"
         return None
 
     def frame(

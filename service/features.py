@@ -17,6 +17,7 @@ import pandas as pd
 from service.errors import DataError
 from service.expressions import parse_expression
 from service.spec import FeatureSpec
+from service.tables import to_numbers
 
 
 @dataclass(frozen=True)
@@ -224,7 +225,7 @@ def _to_float(name: str, values: np.ndarray, problems: list[RowProblem]) -> np.n
     # Numbers need no parsing; this fast path keeps single-event scoring cheap.
     if values.dtype.kind in "biuf":
         return values.astype(np.float64, copy=True)
-    converted = pd.to_numeric(pd.Series(values, dtype=object), errors="coerce")
+    converted = to_numbers(pd.Series(values, dtype=object))
     out = converted.to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
     for row in np.flatnonzero(~pd.isna(values) & np.isnan(out)):
         text = str(values[row])

@@ -240,9 +240,20 @@ def _scan_jsonl(text: str) -> _Scan:
         if not isinstance(record, dict):
             rejects.append((number, "broken line: not a JSON object", {UNPARSED: line[:_KEEP]}))
             continue
+        huge = next((name for name, value in record.items() if _out_of_range(value)), None)
+        if huge is not None:
+            # pandas' JSON reader would refuse the whole file over this one number.
+            rejects.append((number, f"{huge}: integer out of range (beyond 64 bits)",
+                            {UNPARSED: line[:_KEEP]}))
+            continue
         good.append(line)
         rows.append(number)
     return _Scan(None, "\n".join(good) + ("\n" if good else ""), rows, rejects)
+
+
+def _out_of_range(value: object) -> bool:
+    return (isinstance(value, int) and not isinstance(value, bool)
+            and not -(2**63) <= value < 2**64)
 
 
 def _parse(kind: str, text: str, text_columns: list[str], path: Path) -> pd.DataFrame:

@@ -27,6 +27,7 @@ import pandas as pd
 from service.bundle import Bundle
 from service.model import probability
 from service.reasons import ReasonCatalogue, format_value
+from service.tables import to_numbers
 
 How = Literal["cap", "floor", "set"]
 
@@ -95,7 +96,7 @@ def fixed_features(
         if feature.kind == "categorical":
             raw[column] = pd.Series(str(target.value), index=raw.index, dtype="string")
             continue
-        numbers = pd.to_numeric(raw[column], errors="coerce").to_numpy(dtype=np.float64)
+        numbers = to_numbers(raw[column]).to_numpy(dtype=np.float64)
         raw[column] = _moved(numbers, target)
     matrix = bundle.builder.transform(raw).values
     # A derived target (say, power) has no single raw column to set, so it is set directly.

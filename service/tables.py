@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import io
+import math
+import sys
 from collections.abc import Iterable
 from pathlib import Path
 
@@ -16,6 +18,7 @@ _CSV = (".csv", ".csv.gz", ".txt")
 _JSONL = (".jsonl", ".ndjson", ".jsonl.gz")
 _PARQUET = (".parquet", ".pq")
 SUFFIXES = _CSV + _JSONL + _PARQUET
+_LARGEST = sys.float_info.max
 
 
 def table_format(path: Path) -> str:
@@ -82,6 +85,25 @@ def write_table(frame: pd.DataFrame, path: Path) -> None:
 
 _TRUE = frozenset({"1", "1.0", "true", "yes"})
 _FALSE = frozenset({"0", "0.0", "false", "no"})
+
+
+def to_numbers(values: pd.Series) -> pd.Series:
+    """``pd.to_numeric(values, errors="coerce")``, with integers past float64's range as +-inf.
+
+    A JSON document or a CSV cell can hold an integer of any size; pandas raises
+    ``OverflowError`` on one too large for a float instead of coercing it. As infinity it meets
+    the same rule as any other infinite value wherever it is read.
+    """
+    try:
+        return pd.to_numeric(values, errors="coerce")
+    except OverflowError:
+        return pd.to_numeric(values.map(_bounded), errors="coerce")
+
+
+def _bounded(value: object) -> object:
+    if isinstance(value, int) and not isinstance(value, bool) and abs(value) > _LARGEST:
+        return math.inf if value > 0 else -math.inf
+    return value
 
 
 def binary_column(column: pd.Series, name: str, role: str) -> np.ndarray:

@@ -20,7 +20,7 @@ import pandas as pd
 from service.bundle import sha256_file
 from service.errors import DataError
 from service.spec import DatasetSpec, TimelineSpec, span_amount
-from service.tables import read_table
+from service.tables import read_table, to_numbers
 from service.timeline_labels import CENSORED, DOWN, NEGATIVE, POSITIVE, EventLog, label_status
 from service.timeline_windows import Prefix, last_valid_index, rank
 
@@ -57,7 +57,7 @@ class _Clock:
 
     def values(self, column: pd.Series, name: str) -> np.ndarray:
         if self.cycles:
-            numbers = pd.to_numeric(column, errors="coerce")
+            numbers = to_numbers(column)
             bad = numbers.isna()
             kind = "a number (cycle)"
         else:
@@ -324,7 +324,7 @@ def _readings(spec: TimelineSpec, frame: pd.DataFrame, clock: _Clock) -> _Log:
         raise DataError("readings: no rows")
     out = pd.DataFrame({"__entity": frame[r.entity].astype(str).to_numpy()})
     for column in r.measurements:
-        values = pd.to_numeric(frame[column], errors="coerce")
+        values = to_numbers(frame[column])
         bad = values.isna() & frame[column].notna()
         if bad.any():
             example = frame[column][bad.to_numpy()].iloc[0]

@@ -284,6 +284,14 @@ def test_infinity_token(client: TestClient, openapi: OpenAPICheck, events: list[
     assert [(e["field"], e["message"].split()[0]) for e in errors] == [("setpoint_c", "Infinity")]
 
 
+def test_number_out_of_range(client: TestClient, openapi: OpenAPICheck, events: list[dict]) -> None:
+    # RFC 8259 section 6 puts no limit on a number's size; one past float64's cannot be scored.
+    body = json.dumps({"events": [events[0], {**events[1], "setpoint_c": -(10**400)}]}).encode()
+    errors = refused(post_raw(client, body), openapi)
+    assert [(e["event"], e["field"]) for e in errors] == [(1, "setpoint_c")]
+    assert "out of range" in errors[0]["message"]
+
+
 def test_unknown_category(client: TestClient, openapi: OpenAPICheck, events: list[dict]) -> None:
     event = {**events[0], "controller_firmware": "9.9.9"}
     errors = refused(client.post("/v1/score", json={"events": [events[1], event]}), openapi)

@@ -84,6 +84,22 @@ def test_online_snapshot_scores_like_the_batch_build(built, tmp_path: Path) -> N
     )
 
 
+def test_numbers_beyond_float_range_are_a_problem_not_a_crash(built) -> None:
+    # JSON integers have no size limit; one past float64's range must get 422, not a 500.
+    logs, snapshots, bundle_path = built
+    case = snapshots["case_id"].iloc[0]
+    readings = logs.readings[logs.readings["case_id"] == case].head(50).copy()
+    readings["time"] = readings["time"].astype(str)
+    records = _records(readings)
+    number = next(k for k, v in records[-1].items() if isinstance(v, float))
+    records[-1][number] = 10**400
+    app = create_app(Settings(bundle=str(bundle_path), prediction_log="off"))
+    with TestClient(app, raise_server_exceptions=False) as client:
+        response = client.post("/v1/score/timeline", json={"readings": records})
+    assert response.status_code == 422, response.text
+    assert response.headers["content-type"].startswith("application/problem+json")
+
+
 def test_model_without_timeline_refuses_raw_logs(demo_bundle) -> None:  # type: ignore[no-untyped-def]
     app = create_app(Settings(bundle=str(demo_bundle.path), prediction_log="off"))
     with TestClient(app) as client:

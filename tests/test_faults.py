@@ -29,6 +29,7 @@ from pathlib import Path
 from typing import Any
 
 import httpx
+import numpy as np
 import pandas as pd
 import pytest
 from fastapi.testclient import TestClient
@@ -448,6 +449,46 @@ def test_malformed_lines_in_explain_input_go_beside_the_output(
     assert len(scores) == 1000 - 3
     june = scores[scores["id"] == bad[sorted(bad)[0]]]
     assert "month: not a number" in june["warnings"].iloc[0]
+
+
+def test_integers_too_large_to_read_are_rejected_rows_not_a_refused_file(
+    demo_bundle: Bundle, march: pd.DataFrame, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # JSON puts no limit on an integer's size (RFC 8259 section 6); pandas' JSON reader refuses
+    # a whole file over one past 64 bits, and its numeric conversion raises on one past float64.
+    records = json.loads(march.head(20).to_json(orient="records"))
+    lines = [json.dumps(record) for record in records]
+    for row, digits in ((5, 400), (9, 22)):  # past float64, and past 64 bits only
+        lines[row] = lines[row].replace(
+            f'"suction_pressure_kpa": {json.dumps(records[row]["suction_pressure_kpa"])}',
+            '"suction_pressure_kpa": ' + "9" * digits)
+        assert "9" * digits in lines[row]
+    source = tmp_path / "huge.jsonl"
+    source.write_text("\n".join(lines) + "\n", "utf-8")
+    out = tmp_path / "scores.csv"
+    assert causeline(["explain", "--bundle", str(demo_bundle.path), "--input", str(source),
+                      "--out", str(out)]) == 0
+    assert "rejected: 2 unreadable rows" in capsys.readouterr().out
+    rejects = _rejects(tmp_path / "scores.rejects.csv")
+    assert [(int(r["row"]), r["reason"]) for r in rejects] == [
+        (6, "suction_pressure_kpa: integer out of range (beyond 64 bits)"),
+        (10, "suction_pressure_kpa: integer out of range (beyond 64 bits)")]
+    scores = pd.read_csv(out, dtype={"id": str}, keep_default_na=False)
+    assert len(scores) == 18
+
+
+def test_integer_too_large_for_a_float_in_a_table_is_scored_as_missing() -> None:
+    # pandas keeps such an integer as a Python int in an object column (a CSV cell of 400
+    # digits, say); its numeric conversion raises on it instead of coercing it.
+    from service.features import FeatureBuilder
+    from service.spec import FeatureSpec
+
+    builder = FeatureBuilder([FeatureSpec(name="x", kind="numeric", role="observable")])
+    table = pd.DataFrame({"x": pd.Series([1, 10**400, -(10**400)], dtype=object)})
+    matrix = builder.transform(table)
+    assert matrix.values[0, 0] == 1.0 and np.isnan(matrix.values[1:, 0]).all()
+    assert [(p.row, p.message) for p in matrix.problems] == [
+        (1, "value is infinite"), (2, "value is infinite")]
 
 
 def test_jsonl_with_broken_lines_and_a_missing_column(
