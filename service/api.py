@@ -70,16 +70,18 @@ class Current:
     schemas: dict[str, EventSchema]
 
     def pick(self, name: str | None) -> tuple[Model, EventSchema]:
-        names = ", ".join(sorted(self.served.models))
         if name is None:
             name = self.served.default
             if name is None:
-                raise _invalid([FieldError(field="model", message=f"name a model: {names}")])
+                raise _invalid([FieldError(field="model", message=f"name a model: {self._names}")])
         if name not in self.served.models:
-            raise _invalid(
-                [FieldError(field="model", message=f"no model named {name!r}; served: {names}")]
-            )
+            raise _invalid([FieldError(
+                field="model", message=f"no model named {name!r}; served: {self._names}")])
         return self.served.models[name], self.schemas[name]
+
+    @property
+    def _names(self) -> str:
+        return ", ".join(sorted(self.served.models))
 
 
 class Service:

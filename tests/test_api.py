@@ -699,5 +699,6 @@ def test_folder_of_bundles_served_side_by_side(
     assert sorted(m["name"] for m in listing["models"]) == ["display-cases", "display-cases-b"]
     unnamed = client.post("/v1/score", json={"events": events[:1]})
     assert unnamed.status_code == 422 and unnamed.json()["errors"][0]["field"] == "model"
+    assert unnamed.json()["errors"][0]["message"] == "name a model: display-cases, display-cases-b"
     named = client.post("/v1/score", json={"model": "display-cases-b", "events": events[:1]})
     assert named.json()["model"] == {"name": "display-cases-b", "version": "b1"}
