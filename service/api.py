@@ -52,8 +52,8 @@ from service.api_predlog import BackgroundLog
 from service.api_requests import all_contributions, openapi_request, read_body
 from service.api_schema import EventSchema
 from service.api_scoring import Batcher, Job, Scored, log_records
-from service.auth import ApiKeys, api_key_header, bearer, presented_key
-from service.errors import CauselineError
+from service.auth import ApiKeys, api_key_header, bearer, presented_keys
+from service.errors import CauselineError, quoted
 from service.metrics import Metrics, MetricsMiddleware
 from service.problems import FieldError, Problem
 from service.registry import Model, Registry, Served
@@ -76,7 +76,7 @@ class Current:
                 raise _invalid([FieldError(field="model", message=f"name a model: {self._names}")])
         if name not in self.served.models:
             raise _invalid([FieldError(
-                field="model", message=f"no model named {name!r}; served: {self._names}")])
+                field="model", message=f"no model named {quoted(name)}; served: {self._names}")])
         return self.served.models[name], self.schemas[name]
 
     @property
@@ -158,7 +158,7 @@ def check_key(request: Request) -> None:
     """A valid key when keys are configured (401 without one, 403 with a wrong one)."""
     keys = _service(request).keys
     if keys.enabled:
-        keys.check(presented_key(request))
+        keys.check(presented_keys(request))
 
 
 async def require_key(
@@ -219,10 +219,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         lifespan=lifespan,
     )
     app.state.service = service
+    app.router.redirect_slashes = False  # /v1/score/ gets a 404 problem, not an empty 307
     problems.install(app)
     _routes(app)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
-    app.add_middleware(MetricsMiddleware, metrics=service.metrics)
+    app.add_middleware(MetricsMiddleware, metrics=service.metrics, routes=app.router.routes)
     return app
 
 
@@ -300,7 +301,7 @@ def _routes(app: FastAPI) -> None:
         current = _service(request).current
         assert current is not None
         if name not in current.served.models:
-            raise Problem(404, f"no model named {name!r}", "unknown-model")
+            raise Problem(404, f"no model named {quoted(name)}", "unknown-model")
         return describe(current.served.models[name], current.schemas[name])
 
     @app.get("/v1/health/live", response_model=Liveness, tags=["health"])

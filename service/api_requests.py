@@ -23,6 +23,7 @@ from service.problems import FieldError, Problem
 
 Model = TypeVar("Model", bound=BaseModel)
 
+BOM = b"\xef\xbb\xbf"
 CONTRIBUTIONS_HELP = "'all' adds every feature's contribution and base value"
 
 
@@ -32,14 +33,22 @@ async def read_body(request: Request, model: type[Model]) -> Model:
     if media is not None and not _is_json(media):
         raise Problem(415, f"the body is sent as {media[:60]!r}; send it as JSON with the "
                       "header Content-Type: application/json", "unsupported-media-type")
+    coding = request.headers.get("content-encoding")
+    if coding is not None and coding.strip().lower() not in {"", "identity"}:
+        # RFC 9110 section 15.5.16: an unsupported content coding is a 415.
+        raise Problem(415, f"the body is sent with Content-Encoding {coding[:40]!r}; send it "
+                      "unencoded", "unsupported-media-type",
+                      headers={"Accept-Encoding": "identity"})
     body = await _read(request)
+    if body.startswith(BOM):  # RFC 8259 section 8.1: a parser may ignore one
+        body = body[len(BOM):]
     if not body.strip():
         raise RequestValidationError([{"type": "missing", "loc": ("body",), "msg": "required"}])
     try:
         data = api_json.loads(body)
-    except ValueError:
+    except ValueError as exc:  # the parser's words, say "number out of range at line 1 ..."
         raise RequestValidationError(
-            [{"type": "json_invalid", "loc": ("body",), "msg": "JSON decode error"}]
+            [{"type": "json_invalid", "loc": ("body",), "msg": str(exc)[:200]}]
         ) from None
     try:
         return model.model_validate(data)

@@ -21,6 +21,7 @@ from service.problems import FieldError
 _ABSENT = object()
 # JSON integers have no size limit; past this one they cannot become a float64.
 LARGEST = sys.float_info.max
+MAX_TEXT = 256  # ids, times and entities; and field names echoed in errors
 
 
 class EventSchema:
@@ -47,7 +48,7 @@ class EventSchema:
         for index, event in enumerate(events):
             if self.reject_unknown and not self.known.issuperset(event):
                 errors += [
-                    FieldError(event=index, field=str(name), message="unknown field")
+                    FieldError(event=index, field=str(name)[:MAX_TEXT], message="unknown field")
                     for name in event if name not in self.known
                 ]
             for name in self.required:
@@ -70,12 +71,16 @@ class EventSchema:
                     errors.append(FieldError(event=index, field=name, message=message))
             for name in self.optional:
                 value = event.get(name)
-                if value is not None and (
-                    isinstance(value, bool) or not isinstance(value, str | int)
-                ):
+                if value is None:
+                    continue
+                if isinstance(value, bool) or not isinstance(value, str | int):
                     errors.append(
                         FieldError(event=index, field=name, message="expected a string")
                     )
+                elif len(str(value)) > MAX_TEXT:
+                    # Ids are logged, grouped and written to CSVs that spreadsheets open.
+                    message = f"longer than {MAX_TEXT} characters"
+                    errors.append(FieldError(event=index, field=name, message=message))
         return errors
 
     def _type_error(self, name: str, value: Any) -> str | None:
@@ -90,7 +95,8 @@ class EventSchema:
         if isinstance(value, float) and math.isnan(value):
             return "NaN is not a JSON number; send null for an unknown value"
         if isinstance(value, float) and math.isinf(value):
-            return "Infinity is not a JSON number; send a finite number"
+            return "Infinity (or a number too large for a float64) cannot be scored; send a " \
+                "finite number"
         if not -LARGEST <= value <= LARGEST:
             return f"the number is out of range (at most {LARGEST:.4g} in size)"
         return None

@@ -55,21 +55,32 @@ class ApiKeys:
         results = [hmac.compare_digest(given, key) for key in self._keys]
         return any(results)
 
-    def check(self, presented: str | None) -> None:
-        """Raise 401 when no key was sent and 403 when it is not one of ours."""
-        if presented is None or not presented.strip():
+    def check(self, presented: list[str]) -> None:
+        """Raise 401 when no key was sent and 403 when any key sent is not one of ours.
+
+        Two different keys in one request (Bearer and ``X-API-Key``) must both be valid: the
+        request is not let through on whichever one happens to be checked.
+        """
+        if not presented:
             raise Problem(401, "send an API key: Authorization: Bearer <key>", "unauthorized",
                           headers=_CHALLENGE)
-        if not self.matches(presented.strip()):
+        if not all(self.matches(key) for key in presented):
             raise Problem(403, "the API key is not valid", "forbidden")
 
 
-def presented_key(request: Request) -> str | None:
-    """The key from ``Authorization: Bearer`` or ``X-API-Key``, whichever was sent."""
+def presented_keys(request: Request) -> list[str]:
+    """The keys sent as ``Authorization: Bearer <key>`` and as ``X-API-Key``; empty ones left out.
+
+    An ``Authorization`` header of another scheme (say Basic, set by a proxy in front) is not a
+    key of ours and is ignored.
+    """
+    keys = []
     header = request.headers.get("authorization")
     if header:
-        scheme, _, value = header.partition(" ")
-        if scheme.lower() == "bearer":
-            return value
-        return ""  # another scheme: treated as a wrong key rather than a missing one
-    return request.headers.get("x-api-key")
+        scheme, _, value = header.strip().partition(" ")
+        if scheme.lower() == "bearer" and value.strip():
+            keys.append(value.strip())
+    other = request.headers.get("x-api-key")
+    if other and other.strip():
+        keys.append(other.strip())
+    return keys

@@ -25,3 +25,9 @@ def first_line(exc: BaseException) -> str:
     """An exception's message cut to its first line (its type name when it has none)."""
     text = str(exc).strip()
     return text.splitlines()[0] if text else type(exc).__name__
+
+
+def quoted(text: str, limit: int = 60) -> str:
+    """``text`` in quotes for a message, cut at ``limit`` characters: a message never echoes a
+    megabyte a client sent."""
+    return repr(text if len(text) <= limit else text[:limit] + "...")

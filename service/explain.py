@@ -72,10 +72,22 @@ class Explainer:
         )
 
     def _warnings(self, matrix: FeatureMatrix) -> list[list[str]]:
-        """Per row: cell problems, and values outside the range seen in training."""
+        """Per row: cell problems, missing values, and values outside the training range."""
         out: list[list[str]] = [[] for _ in range(matrix.values.shape[0])]
         for problem in matrix.problems:
             out[problem.row].append(_problem_text(problem))
+        # The trees send a missing value down the side training chose for it, so a score is
+        # always given; an event with few values gets a score resting on little, and says so.
+        missing = np.isnan(matrix.values)
+        if missing.any():
+            told = {(problem.row, problem.column) for problem in matrix.problems}
+            total = len(matrix.names)
+            for row in np.flatnonzero(missing.any(axis=1)).tolist():
+                names = [matrix.names[c] for c in np.flatnonzero(missing[row]).tolist()
+                         if (row, matrix.names[c]) not in told]
+                if names:
+                    out[row].append(f"no value for {', '.join(names)} ({len(names)} of {total} "
+                                    "features): scored as missing")
         # NaN (missing) compares false, quietly: never outside.
         outside = (matrix.values < self._low) | (matrix.values > self._high)
         for row, position in zip(*np.nonzero(outside), strict=True):

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from service.errors import DataError
+from service.errors import DataError, quoted
 from service.expressions import parse_expression
 from service.spec import FeatureSpec
 from service.tables import to_numbers
@@ -165,7 +165,7 @@ class FeatureBuilder:
             text = str(value).strip()
             code = lookup.get(text)
             if code is None:
-                problems.append(RowProblem(row, feature.name, f"unknown category {text!r}"))
+                problems.append(RowProblem(row, feature.name, f"unknown category {quoted(text)}"))
                 codes.append(np.nan)
             else:
                 codes.append(code)

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import collections
 import time
-from collections.abc import Awaitable, Callable, MutableMapping
+from collections.abc import Awaitable, Callable, MutableMapping, Sequence
 from typing import Any
 
 from prometheus_client import (
@@ -20,6 +20,7 @@ from prometheus_client import (
     disable_created_metrics,
     generate_latest,
 )
+from starlette.routing import Match
 
 # The *_created series double the output and no dashboard here uses them.
 disable_created_metrics()
@@ -111,9 +112,10 @@ class Metrics:
 class MetricsMiddleware:
     """Counts requests by route template (never the raw path, which would explode labels)."""
 
-    def __init__(self, app: ASGIApp, metrics: Metrics) -> None:
+    def __init__(self, app: ASGIApp, metrics: Metrics, routes: Sequence[Any] = ()) -> None:
         self.app = app
         self.metrics = metrics
+        self._routes = routes  # to name the route of a request answered before routing
         self._cache: dict[tuple[str, int], tuple[Any, Any]] = {}
 
     async def __call__(self, scope: Scope, receive: Any, send: Any) -> None:
@@ -132,10 +134,18 @@ class MetricsMiddleware:
         try:
             await self.app(scope, receive, send_wrapper)
         finally:
-            route = getattr(scope.get("route"), "path", None) or "unmatched"
+            route = getattr(scope.get("route"), "path", None) or self._template(scope)
             count, latency = self._series(route, status)
             count.inc()
             latency.observe(time.perf_counter() - started)
+
+    def _template(self, scope: Scope) -> str:
+        """The route a request was for when it was answered before routing (say a 413)."""
+        for route in self._routes:
+            match, child = route.matches(scope)
+            if match != Match.NONE:
+                return getattr(child.get("route", route), "path", None) or "unmatched"
+        return "unmatched"
 
     def _series(self, route: str, status: int) -> tuple[Any, Any]:
         """The request counter and latency histogram of one route and status, looked up once.

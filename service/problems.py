@@ -14,12 +14,14 @@ from typing import Any
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
-from fastapi.responses import JSONResponse
+from fastapi.responses import JSONResponse, Response
 from pydantic import BaseModel
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.requests import ClientDisconnect
 
 MEDIA_TYPE = "application/problem+json"
 TYPE_PREFIX = "urn:causeline:problem:"
+CLIENT_CLOSED = 499
 logger = logging.getLogger("causeline.service")
 
 
@@ -131,8 +133,11 @@ def install(app: FastAPI) -> None:
 
     async def on_validation(request: Request, exc: Exception) -> JSONResponse:
         assert isinstance(exc, RequestValidationError)
-        if any(error.get("type") == "json_invalid" for error in exc.errors()):
-            return problem_response(400, "the request body is not valid JSON", "malformed-json")
+        broken = [e for e in exc.errors() if e.get("type") == "json_invalid"]
+        if broken:
+            reason = str(broken[0].get("msg", ""))
+            detail = "the request body is not valid JSON" + (f": {reason}" if reason else "")
+            return problem_response(400, detail, "malformed-json")
         errors = _merge(validation_errors(exc))
         return problem_response(
             422, f"{len(errors)} invalid field(s) in the request", "invalid-request", errors
@@ -143,6 +148,13 @@ def install(app: FastAPI) -> None:
         detail = exc.detail if exc.detail != HTTPStatus(exc.status_code).phrase else None
         return problem_response(exc.status_code, detail, headers=exc.headers)
 
+    async def on_hang_up(request: Request, exc: Exception) -> Response:
+        # Nothing can be sent and nothing went wrong here: no traceback, and the request is
+        # counted under 499 (nginx's "client closed request"), not as a server error.
+        logger.info("client closed the connection during %s %s", request.method,
+                    request.url.path)
+        return Response(status_code=CLIENT_CLOSED)
+
     async def on_crash(request: Request, exc: Exception) -> JSONResponse:
         logger.error(
             "unhandled error on %s %s", request.method, request.url.path, exc_info=exc
@@ -152,6 +164,7 @@ def install(app: FastAPI) -> None:
     app.add_exception_handler(Problem, on_problem)
     app.add_exception_handler(RequestValidationError, on_validation)
     app.add_exception_handler(StarletteHTTPException, on_http)
+    app.add_exception_handler(ClientDisconnect, on_hang_up)
     app.add_exception_handler(Exception, on_crash)
 
 

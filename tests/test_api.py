@@ -230,6 +230,35 @@ def test_concurrent_requests_batched_together_equal_each_alone(
     assert first.records + second.records == alone
 
 
+def test_client_that_hangs_up_mid_body_is_no_server_error(
+    client: TestClient, caplog: pytest.LogCaptureFixture
+) -> None:
+    # A client may give up before its body arrives (a declared length never sent): nothing
+    # failed on the server, so no 500 is counted (alerts watch 5xx) and no traceback logged.
+    before = metric(client.get("/metrics").text, "causeline_http_requests_total", status="499")
+    sent: list[dict[str, Any]] = []
+
+    async def receive() -> dict[str, Any]:
+        return {"type": "http.disconnect"}
+
+    async def send(message: dict[str, Any]) -> None:
+        sent.append(message)
+
+    scope = {"type": "http", "asgi": {"version": "3.0"}, "http_version": "1.1",
+             "method": "POST", "scheme": "http", "path": "/v1/score", "raw_path": b"/v1/score",
+             "query_string": b"", "root_path": "", "client": ("127.0.0.1", 1),
+             "server": ("127.0.0.1", 2), "headers": [
+                 (b"host", b"x"), (b"content-type", b"application/json"),
+                 (b"content-length", b"5000")]}
+    with caplog.at_level("INFO", logger="causeline.service"):
+        asyncio.run(client.app(scope, receive, send))
+    text = client.get("/metrics").text
+    assert metric(text, "causeline_http_requests_total", status="499") == before + 1
+    assert metric(text, "causeline_http_requests_total", route="/v1/score", status="500") == 0
+    assert not [r for r in caplog.records if r.levelname in {"ERROR", "CRITICAL"}]
+    assert any("closed the connection" in r.getMessage() for r in caplog.records)
+
+
 def test_a_failing_batch_hook_still_answers_every_request(
     client: TestClient, events: list[dict]
 ) -> None:
@@ -299,6 +328,47 @@ def test_unknown_category(client: TestClient, openapi: OpenAPICheck, events: lis
                        "message": "unknown category '9.9.9'"}]
 
 
+def test_long_texts_are_refused_or_cut_in_messages(
+    client: TestClient, openapi: OpenAPICheck, events: list[dict]
+) -> None:
+    # An id goes into the prediction log and the root-cause CSVs (spreadsheets hold at most
+    # 32,767 characters in a cell, from memory); a refused value must not be echoed in full.
+    errors = refused(client.post("/v1/score", json={"events": [
+        {**events[0], "snapshot_id": "x" * 257}]}), openapi)
+    assert errors == [{"event": 0, "field": "snapshot_id",
+                       "message": "longer than 256 characters"}]
+    errors = refused(client.post("/v1/score", json={"events": [
+        {**events[0], "case_type": "y" * 1_000_000}]}), openapi)
+    assert errors[0]["field"] == "case_type" and len(errors[0]["message"]) < 100
+    errors = refused(client.post("/v1/score", json={"events": [
+        {**events[0], "z" * 10_000: 1}]}), openapi)
+    assert errors[0]["message"] == "unknown field" and len(errors[0]["field"]) <= 256
+    errors = refused(client.post("/v1/score", json={"model": "m" * 10_000, "events": events}),
+                     openapi)
+    assert len(errors[0]["message"]) < 200
+
+
+def test_trailing_slash_is_not_redirected(client: TestClient, events: list[dict]) -> None:
+    response = client.post("/v1/score/", json={"events": events[:1]}, follow_redirects=False)
+    assert response.status_code == 404
+    assert response.headers["content-type"].startswith("application/problem+json")
+
+
+def test_missing_values_are_scored_and_named_in_warnings(
+    client: TestClient, events: list[dict]
+) -> None:
+    # The trees score a missing value by the side training sent it (LightGBM's missing-value
+    # handling), so an event of nulls still gets a score; it must say what it rests on.
+    fields = [name for name, value in events[0].items()
+              if name != "snapshot_id" and not isinstance(value, str)]
+    empty = {**events[0], **dict.fromkeys(fields)}
+    result = client.post("/v1/score", json={"events": [events[0], empty]}).json()["results"]
+    assert not any(w.startswith("no value for") for w in result[0]["warnings"])
+    told = [w for w in result[1]["warnings"] if w.startswith("no value for")]
+    assert len(told) == 1 and f"({len(fields)} of " in told[0]
+    assert all(name in told[0] for name in fields)
+
+
 def test_unknown_field(client: TestClient, openapi: OpenAPICheck, events: list[dict]) -> None:
     event = {**events[0], "store_id": "ST-01"}
     errors = refused(client.post("/v1/score", json={"events": [event]}), openapi)
@@ -345,10 +415,43 @@ def test_body_over_the_size_limit(
     response = client.post("/v1/score", content=chunks(),
                            headers={"content-type": "application/json"})
     refused(response, openapi, 413)
+    # Refused before routing, yet counted under the route it was sent to.
+    text = client.get("/metrics").text
+    assert metric(text, "causeline_http_requests_total", route="/v1/score", status="413") == 2
 
 
 def test_malformed_json(client: TestClient, openapi: OpenAPICheck) -> None:
     refused(post_raw(client, b'{"events": [{"month": 5,'), openapi, 400)
+    response = post_raw(client, b'{"events": [{"month": 5,')
+    assert "EOF while parsing" in response.json()["detail"]  # the parser says where and why
+
+
+def test_json_nested_too_deep(client: TestClient, openapi: OpenAPICheck) -> None:
+    # Valid JSON, but a parser must bound its nesting (RFC 8259 section 9 lets it set limits).
+    refused(post_raw(client, b'{"events": [' + b"[" * 300 + b"]" * 300 + b"]}"), openapi, 400)
+    assert "recursion limit" in post_raw(client, b"[" * 300 + b"]" * 300).json()["detail"]
+
+
+def test_byte_order_mark_is_ignored(client: TestClient, events: list[dict]) -> None:
+    # RFC 8259 section 8.1: a parser may ignore a UTF-8 byte order mark, and some tools send one.
+    body = b"\xef\xbb\xbf" + json.dumps({"events": events[:1]}).encode()
+    assert post_raw(client, body).status_code == 200
+
+
+def test_content_encoding_other_than_identity(
+    client: TestClient, openapi: OpenAPICheck, events: list[dict]
+) -> None:
+    # RFC 9110 section 15.5.16: a content coding the server does not apply gets 415 and an
+    # Accept-Encoding header; the body must never be scored as if it were not encoded.
+    body = json.dumps({"events": events[:1]}).encode()
+    for coding in ("gzip", "br"):
+        response = client.post("/v1/score", content=body, headers={
+            "content-type": "application/json", "content-encoding": coding})
+        refused(response, openapi, 415)
+        assert response.headers["accept-encoding"] == "identity"
+    plain = client.post("/v1/score", content=body, headers={
+        "content-type": "application/json", "content-encoding": "identity"})
+    assert plain.status_code == 200
 
 
 def test_empty_body(client: TestClient, openapi: OpenAPICheck) -> None:
@@ -459,6 +562,25 @@ def test_api_keys(make_client: Callable[..., TestClient], events: list[dict],
     assert client.get("/v1/health/ready").status_code == 200
     assert client.post("/v1/admin/reload").status_code == 401
     assert client.post("/v1/admin/reload", headers={"X-API-Key": KEY}).status_code == 200
+
+
+def test_api_key_beside_another_authorization_scheme(
+    make_client: Callable[..., TestClient], events: list[dict]
+) -> None:
+    # A proxy in front may set Authorization: Basic (RFC 7617); that is not a key of ours and
+    # must not hide a valid X-API-Key. Two different keys in one request must both be valid.
+    client = make_client(api_keys=f"{KEY},second-key")
+    body = {"events": events[:1]}
+
+    def status(**headers: str) -> int:
+        return client.post("/v1/score", json=body, headers=headers).status_code
+
+    assert status(Authorization="Basic dXNlcjpwdw==", **{"X-API-Key": KEY}) == 200
+    assert status(Authorization="Bearer ", **{"X-API-Key": KEY}) == 200
+    assert status(Authorization="Basic dXNlcjpwdw==") == 401
+    assert status(Authorization=f"Bearer {KEY}", **{"X-API-Key": "second-key"}) == 200
+    assert status(Authorization=f"Bearer {KEY}", **{"X-API-Key": "nope"}) == 403
+    assert status(Authorization="Bearer nope", **{"X-API-Key": KEY}) == 403
 
 
 def test_admin_is_refused_when_auth_is_off_unless_allowed(
