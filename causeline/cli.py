@@ -244,6 +244,9 @@ def _rootcause(args: argparse.Namespace) -> int:
     )
     if counts["rejected"]:
         print(f"rejected: {counts['rejected']} rows (reasons in {args.out / 'rejects.csv'})")
+    if counts.get("repeats_dropped"):
+        print(f"repeats dropped: {counts['repeats_dropped']} log entries (an event id counts "
+              "once, by its latest entry)")
     for record in result.groups.to_dict("records"):
         status = record["status"] if isinstance(record["status"], str) else ""
         print(f"  {record['group_id']:<12} {status:<9} {record['events']:>7}  {record['label']}")

@@ -3,7 +3,8 @@
 The input is a table (CSV, JSON lines, Parquet) or the service's prediction log. By default the
 job groups actual events (the bundle's label column says the event happened); with
 ``predicted`` it groups rows whose calibrated probability reaches the bundle's threshold. A
-prediction log holds no labels, so it needs ``predicted``.
+prediction log holds no labels, so it needs ``predicted``. A client that retries logs the same
+event again; in a prediction log each event id counts once (:func:`latest_entries`).
 """
 
 from __future__ import annotations
@@ -39,7 +40,8 @@ class EventInput:
     """The readable input rows, where ids and times come from, and the rows set aside.
 
     ``rows`` holds each table row's number in the source (its line in a CSV or JSON-lines file);
-    ``rejects`` the rows that could not be read (:mod:`service.rejects`).
+    ``rejects`` the rows that could not be read (:mod:`service.rejects`); ``repeats_dropped``
+    the earlier log entries of event ids logged more than once (:func:`latest_entries`).
     """
 
     table: pd.DataFrame
@@ -48,6 +50,7 @@ class EventInput:
     from_log: bool
     rows: np.ndarray
     rejects: pd.DataFrame
+    repeats_dropped: int = 0
 
 
 def read_events(bundle: Bundle, path: Path) -> EventInput:
@@ -62,9 +65,14 @@ def read_events(bundle: Bundle, path: Path) -> EventInput:
         for column in (id_column, spec.entity):
             if column is not None and column in table.columns:
                 table[column] = table[column].astype("string")
-        rows = np.arange(1, len(table) + 1)
         rejects = pd.DataFrame(bad) if bad else empty_rejects(table.columns)
-        return EventInput(table, id_column, LOG_TIME, True, rows, rejects)
+        # Only the event's own id says two entries are one event: the id the log gives an event
+        # sent without one is its position in the request, shared by unrelated events.
+        latest = latest_entries(table, spec.id)
+        rows = np.arange(1, len(table) + 1)[latest]
+        table = table[latest].reset_index(drop=True)
+        repeats = int((~latest).sum())
+        return EventInput(table, id_column, LOG_TIME, True, rows, rejects, repeats)
     if path.is_dir():
         raise DataError(f"{path}: a folder without prediction-log segments")
     text = [c for c in (spec.id, spec.entity) if c is not None]
@@ -72,6 +80,30 @@ def read_events(bundle: Bundle, path: Path) -> EventInput:
     if spec.id not in read.table.columns:
         raise DataError(f"{path}: no id column {spec.id!r}")
     return EventInput(read.table, spec.id, spec.time, False, read.rows, read.rejects)
+
+
+def latest_entries(table: pd.DataFrame, id_column: str) -> np.ndarray:
+    """True for each event id's latest prediction-log entry and for every entry without an id.
+
+    A client retry logs an event again; counting each copy would multiply group sizes and
+    estimates. The latest entry has the latest ``log_logged_at`` (a time that cannot be read
+    ranks before every other); among equal times the later position in the log wins. Entries
+    with an empty id are never taken for one another.
+    """
+    keep = np.ones(len(table), dtype=bool)
+    if id_column not in table.columns:
+        return keep
+    ids = table[id_column].astype("string")
+    has_id = (ids.str.strip() != "").fillna(False).to_numpy(dtype=bool)
+    if LOG_TIME in table.columns:
+        times = pd.to_datetime(table[LOG_TIME], errors="coerce", utc=True, format="mixed")
+    else:
+        times = pd.Series(pd.NaT, index=table.index, dtype="datetime64[ns, UTC]")
+    order = pd.DataFrame({"id": ids, "time": times, "position": np.arange(len(table))})[has_id]
+    order = order.sort_values(["time", "position"], na_position="first", kind="stable")
+    keep[has_id] = False
+    keep[order.drop_duplicates("id", keep="last")["position"].to_numpy()] = True
+    return keep
 
 
 def event_labels(column: pd.Series, name: str) -> np.ndarray:

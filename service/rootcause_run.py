@@ -99,13 +99,15 @@ class JobStart:
 class SelectedEvents:
     """What every engine hands to :func:`finish_rootcause` besides the groups: counts, the
     rejected rows and the feature rows co-driver shifts of the fix simulation are fitted on
-    (:mod:`service.rootcause_fix`)."""
+    (:mod:`service.rootcause_fix`). ``repeats_dropped``: earlier prediction-log entries of
+    event ids logged again (:func:`service.rootcause_input.latest_entries`)."""
 
     reference: np.ndarray
     rejects: pd.DataFrame
     time_column: str | None
     rows_read: int
     rows_in_window: int
+    repeats_dropped: int = 0
 
 
 @dataclass(frozen=True)
@@ -182,6 +184,9 @@ def run_rootcause(
         )
     progress(f"step 1/{STEPS}: reading {events_path}")
     source = read_events(bundle, events_path)
+    if source.repeats_dropped:
+        progress(f"step 1/{STEPS}: {source.repeats_dropped:,} repeated log entries dropped "
+                 "(an event id logged more than once counts once, its latest entry)")
     times = event_times(source)
     window = window_mask(times, since, until, source.time_column)
     table = source.table[window]
@@ -212,7 +217,8 @@ def run_rootcause(
     groups = int(finder.labels_.max(initial=-1)) + 1
     selection = SelectedEvents(
         reference=reference, rejects=rejects, time_column=source.time_column,
-        rows_read=len(source.table) + len(source.rejects), rows_in_window=len(table),
+        rows_read=len(source.table) + source.repeats_dropped + len(source.rejects),
+        rows_in_window=len(table), repeats_dropped=source.repeats_dropped,
     )
     grouping = Grouping(groups, {
         "engine": "local", "min_cluster_size": finder.min_cluster_size_,
@@ -293,6 +299,7 @@ def finish_rootcause(
         "counts": {
             "rows_read": selection.rows_read,
             "rejected": len(rejects),
+            "repeats_dropped": selection.repeats_dropped,
             "rows_in_window": selection.rows_in_window,
             "events": tally.events,
             "grouped": tally.grouped,

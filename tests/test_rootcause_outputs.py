@@ -201,3 +201,59 @@ def test_broken_prediction_log_lines_are_rejected_not_fatal(bundle, fleet, tmp_p
     assert summary["counts"]["rejected"] == 2
     events = pd.read_csv(out / EVENT_GROUPS)
     assert len(events) == int(Explainer(bundle).explain(rows).decision.sum())
+
+
+def _entry(bundle, event: dict, logged_at: pd.Timestamp) -> dict:  # type: ignore[no-untyped-def]
+    return {"logged_at": logged_at.isoformat(timespec="milliseconds"), "model": bundle.name,
+            "version": bundle.version, "id": event.get("snapshot_id", "0"), "probability": 0.0,
+            "decision": False, "reasons": [], "event": event}
+
+
+def test_repeated_event_ids_in_a_prediction_log_count_once(bundle, fleet, tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # Client retries: the same 1,500 event ids logged three times must give the run of the log
+    # that holds each once. The copies that must lose carry other rows' fields (April's), so
+    # picking the wrong copy changes the events, not just their number.
+    rows = fleet[fleet["snapshot_time"].str.startswith("2025-03")].head(1500)
+    stale = fleet[fleet["snapshot_time"].str.startswith("2025-04")].head(1500)
+    events = rows.drop(columns=["went_warm_24h"]).to_dict("records")
+    others = stale.drop(columns=["went_warm_24h"]).to_dict("records")
+    decided = Explainer(bundle).explain(rows).decision
+    # Flagged events sent without an id, each logged twice: they are not one event.
+    anonymous = [{k: v for k, v in e.items() if k != "snapshot_id"}
+                 for e, flagged in zip(events, decided, strict=True) if flagged][:3]
+    start = pd.Timestamp("2026-12-01T08:00:00+00:00")
+    late = start + pd.Timedelta(minutes=5)
+    keep = [_entry(bundle, e, late) for e in events]
+    blank = [_entry(bundle, e, start) for e in anonymous + anonymous]
+
+    once = PredictionLogWriter(tmp_path / "once")
+    once.append(keep + blank)
+    once.close()
+    # Written first, same time as the kept copy: a tie goes to the later position in the log.
+    tied = [_entry(bundle, {**o, "snapshot_id": e["snapshot_id"]}, late)
+            for e, o in zip(events, others, strict=True)]
+    # Written last but logged earlier (another replica's clock): the earlier time loses.
+    earlier = [_entry(bundle, {**o, "snapshot_id": e["snapshot_id"]}, start)
+               for e, o in zip(events, others, strict=True)]
+    thrice = PredictionLogWriter(tmp_path / "thrice", segment_bytes=400_000)
+    for batch in (tied, keep, blank, earlier):
+        thrice.append(batch)
+    thrice.close()
+    assert len(list((tmp_path / "thrice").glob("segment-*.jsonl"))) > 1
+
+    options = RootCauseOptions(predicted=True)
+    a = run_rootcause(bundle, tmp_path / "once", tmp_path / "a", options)
+    b = run_rootcause(bundle, tmp_path / "thrice", tmp_path / "b", options)
+    counts_a, counts_b = a.summary["counts"], b.summary["counts"]
+    assert counts_a["repeats_dropped"] == 0
+    assert counts_b["repeats_dropped"] == 2 * len(events)
+    assert counts_b["rows_read"] == 3 * len(events) + len(blank)
+    skip = {"rows_read", "repeats_dropped"}
+    assert {k: v for k, v in counts_b.items() if k not in skip} == {
+        k: v for k, v in counts_a.items() if k not in skip
+    }
+    assert counts_a["events"] == int(decided.sum()) + len(blank)  # id-less copies all stay
+    assert counts_a["groups"] > 0
+    pd.testing.assert_frame_equal(b.groups, a.groups)
+    pd.testing.assert_frame_equal(b.event_groups, a.event_groups)
+    assert int(b.event_groups["event_id"].isna().sum()) == len(blank)
