@@ -277,8 +277,8 @@ def _routes(app: FastAPI) -> None:
         flag = all_contributions(request)
         current = _service(request).current
         assert current is not None
-        model, _ = current.pick(payload.model)
-        event = await run_in_threadpool(online_event, model.bundle, payload)
+        model, schema = current.pick(payload.model)
+        event = await run_in_threadpool(online_event, model.bundle, payload, schema.reject_unknown)
         return await _score(request, payload.model, [event], flag)
 
     @app.get("/v1/models", response_model=ModelList, dependencies=keyed, tags=["models"],

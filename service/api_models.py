@@ -41,9 +41,12 @@ class TimelineScoreRequest(BaseModel):
     attributes: dict[str, Any] | None = Field(
         default=None, description="the entity's static attributes"
     )
-    at: str | float | None = Field(
+    # Checked by the online builder, which knows the clock (text on a time clock, a number on
+    # a cycle clock): declared as a union here, pydantic would name its members in errors.
+    at: Any = Field(
         default=None,
         description="snapshot time (ISO time, or a cycle number); default: the latest reading",
+        json_schema_extra={"anyOf": [{"type": "string"}, {"type": "number"}, {"type": "null"}]},
     )
 
 

@@ -12,14 +12,22 @@ import numpy as np
 import pandas as pd
 
 from service.api_models import TimelineScoreRequest
+from service.api_schema import json_type, number_error
 from service.bundle import Bundle
 from service.errors import CauselineError, first_line
 from service.problems import FieldError, Problem
-from service.timeline import TimelineInputs, entity_features
+from service.spec import TimelineSpec
+from service.timeline import LogValueError, TimelineInputs, entity_features
 
 
-def online_event(bundle: Bundle, payload: TimelineScoreRequest) -> dict[str, Any]:
-    """The built snapshot as an event of raw fields; 422 problems for what cannot be built."""
+def online_event(
+    bundle: Bundle, payload: TimelineScoreRequest, reject_unknown: bool = True
+) -> dict[str, Any]:
+    """The built snapshot as an event of raw fields; 422 problems for what cannot be built.
+
+    ``reject_unknown`` refuses readings fields the config does not name, as ``/v1/score``
+    refuses unknown event fields (the ``unknown_fields`` setting).
+    """
     spec = bundle.spec
     if spec.timeline is None:
         raise Problem(
@@ -27,6 +35,10 @@ def online_event(bundle: Bundle, payload: TimelineScoreRequest) -> dict[str, Any
             "/v1/score", "no-timeline",
             [FieldError(field="readings", message="this model takes built features")],
         )
+    errors = check_request(spec.timeline, payload, reject_unknown)
+    if errors:
+        raise Problem(422, f"{len(errors)} invalid field(s) in the request", "invalid-request",
+                      errors)
     inputs = TimelineInputs(
         readings=pd.DataFrame(payload.readings),
         failures=pd.DataFrame(payload.failures) if payload.failures else _empty(spec, "failures"),
@@ -35,6 +47,12 @@ def online_event(bundle: Bundle, payload: TimelineScoreRequest) -> dict[str, Any
     )
     try:
         row = entity_features(spec, inputs, at=payload.at)
+    except LogValueError as exc:
+        field = _field(exc)
+        raise Problem(
+            422, f"the logs cannot be built into a snapshot: {field}: {exc.reason}",
+            "invalid-timeline", [FieldError(field=field, message=exc.reason)],
+        ) from None
     except (CauselineError, KeyError, ValueError, TypeError) as exc:
         message = first_line(exc)
         raise Problem(
@@ -47,6 +65,63 @@ def online_event(bundle: Bundle, payload: TimelineScoreRequest) -> dict[str, Any
     # The build makes every windowed feature; the model reads the ones its config lists.
     wanted = set(bundle.builder.required_columns) | {spec.id, spec.time, spec.entity}
     return {name: _plain(value) for name, value in row.iloc[0].items() if name in wanted}
+
+
+def check_request(
+    spec: TimelineSpec, payload: TimelineScoreRequest, reject_unknown: bool = True
+) -> list[FieldError]:
+    """The JSON types of ``at`` and of each reading, checked as ``/v1/score`` checks events.
+
+    Values of the right type that still cannot be read (a time pandas cannot hold, a time
+    before every reading) are the build's to refuse: it refuses them in batch builds too.
+    """
+    cycles = spec.clock == "cycle"
+    errors: list[FieldError] = []
+    if payload.at is not None and (message := _time_error(payload.at, cycles)):
+        errors.append(FieldError(field="at", message=message))
+    r = spec.readings
+    known = {r.entity, r.time, *r.measurements, *r.states}
+    first: tuple[int, str] | None = None
+    second = False
+    for row, reading in enumerate(payload.readings):
+        found: list[tuple[str, str | None]] = []
+        if reject_unknown:
+            found += [(str(name), "unknown field") for name in reading if name not in known]
+        entity = reading.get(r.entity)
+        if entity is not None and (isinstance(entity, bool) or not isinstance(entity, str | int)):
+            found.append((r.entity, "expected a string"))
+        elif entity is not None and first is None:
+            first = (row, str(entity))
+        elif entity is not None and first is not None and str(entity) != first[1] and not second:
+            second = True  # once: every later row of that entity would say the same
+            found.append((r.entity, f"a second entity ({str(entity)!r}; readings.{first[0]} has "
+                                    f"{first[1]!r}): send the readings of one entity"))
+        if reading.get(r.time) is not None:
+            found.append((r.time, _time_error(reading[r.time], cycles)))
+        found += [(name, number_error(reading.get(name))) for name in r.measurements]
+        found += [(name, "expected a string or a number, got " + json_type(reading[name]))
+                  for name in r.states if isinstance(reading.get(name), list | dict)]
+        errors += [FieldError(field=f"readings.{row}.{name}", message=message)
+                   for name, message in found if message]
+    return errors
+
+
+def _time_error(value: Any, cycles: bool) -> str | None:
+    """What is wrong with a JSON value given as a time, at the level of its JSON type."""
+    if isinstance(value, str):
+        return None  # the build parses it, in the same way as in a batch build
+    if cycles:
+        return number_error(value)
+    # pandas would read a number as nanoseconds since 1970: no JSON number is a calendar time.
+    return f"expected a time as ISO 8601 text, got {json_type(value)}"
+
+
+def _field(error: LogValueError) -> str:
+    """The request field a located build error points at: ``at`` or ``readings.3.time``."""
+    if error.log == "at":
+        return "at"
+    parts = [error.log, error.row, error.column]
+    return ".".join(str(part) for part in parts if part is not None)
 
 
 def _empty(spec: Any, log: str) -> pd.DataFrame | None:

@@ -89,17 +89,8 @@ class EventSchema:
         if name in self.text:
             if isinstance(value, str) or (isinstance(value, int) and not isinstance(value, bool)):
                 return None
-            return f"expected a string (a category), got {_json_type(value)}"
-        if isinstance(value, bool) or not isinstance(value, int | float):
-            return f"expected a number, got {_json_type(value)}"
-        if isinstance(value, float) and math.isnan(value):
-            return "NaN is not a JSON number; send null for an unknown value"
-        if isinstance(value, float) and math.isinf(value):
-            return "Infinity (or a number too large for a float64) cannot be scored; send a " \
-                "finite number"
-        if not -LARGEST <= value <= LARGEST:
-            return f"the number is out of range (at most {LARGEST:.4g} in size)"
-        return None
+            return f"expected a string (a category), got {json_type(value)}"
+        return number_error(value)
 
     def frame(
         self, events: Sequence[Mapping[str, Any]], ids: Sequence[str]
@@ -138,7 +129,23 @@ def event_id(event: Mapping[str, Any], id_field: str, position: int) -> str:
     return str(position) if value is None else str(value)
 
 
-def _json_type(value: Any) -> str:
+def number_error(value: Any) -> str | None:
+    """Why a JSON value cannot be a number field's value; None for null or a usable number."""
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return f"expected a number, got {json_type(value)}"
+    if isinstance(value, float) and math.isnan(value):
+        return "NaN is not a JSON number; send null for an unknown value"
+    if isinstance(value, float) and math.isinf(value):
+        return "Infinity (or a number too large for a float64) cannot be scored; send a " \
+            "finite number"
+    if not -LARGEST <= value <= LARGEST:
+        return f"the number is out of range (at most {LARGEST:.4g} in size)"
+    return None
+
+
+def json_type(value: Any) -> str:
     if isinstance(value, bool):
         return "a boolean"
     if isinstance(value, str):

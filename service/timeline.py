@@ -28,6 +28,8 @@ STATUS = "snapshot_status"
 LATEST = "latest"
 _NS = 1_000_000_000
 _UNIT_NS = {"m": 60 * _NS, "h": 3600 * _NS, "d": 86_400 * _NS}
+_TIME_RANGE = f"{pd.Timestamp.min:%Y-%m-%d} to {pd.Timestamp.max:%Y-%m-%d}"
+_TIME_KINDS = {"string", "datetime", "datetime64", "date", "empty"}
 
 
 @dataclass(frozen=True)
@@ -47,6 +49,23 @@ class _Log:
     frame: pd.DataFrame
 
 
+class LogValueError(DataError):
+    """A value of a log (or a snapshot time) that cannot be used, with where it is: ``log``
+    (``readings``, ``failures``, ``actions`` or ``at``), its ``row`` label (from 0) and
+    ``column``, so the HTTP API can name the field; ``reason`` is the message without the place.
+    """
+
+    def __init__(
+        self, reason: str, log: str, column: str | None = None, row: object | None = None
+    ) -> None:
+        self.reason, self.log, self.column, self.row = reason, log, column, row
+        # Counted from 1 in the message, as the other table checks count rows.
+        shown = row + 1 if isinstance(row, int | np.integer) else row
+        where = log + ("" if row is None else f", row {shown}")
+        where += "" if column is None or column == log else f", column {column!r}"
+        super().__init__(f"{where}: {reason}")
+
+
 class _Clock:
     """Times as numbers: int64 nanoseconds on a time clock, float cycles on a cycle clock."""
 
@@ -55,21 +74,40 @@ class _Clock:
         self.cycles = spec.clock == "cycle"
         self.per_unit = 1.0 if self.cycles else float(_UNIT_NS[spec.unit])
 
-    def values(self, column: pd.Series, name: str) -> np.ndarray:
+    def values(self, column: pd.Series, log: str, name: str) -> np.ndarray:
+        """The column as clock numbers; the first value that is not one stops, located."""
         if self.cycles:
             numbers = to_numbers(column)
-            bad = numbers.isna()
-            kind = "a number (cycle)"
-        else:
-            numbers = pd.to_datetime(column, errors="coerce", utc=True, format="mixed")
-            bad = numbers.isna()
-            kind = "a time"
-        if bad.any():
-            example = column[bad.to_numpy()].iloc[0]
-            raise DataError(f"column {name!r} (time) has a value that is not {kind}: {example!r}")
-        if self.cycles:
-            return numbers.to_numpy(dtype=np.float64)
-        return numbers.dt.tz_convert(None).to_numpy(dtype="datetime64[ns]").view(np.int64)
+            # Infinity (also a JSON integer past float64's range) is no cycle either.
+            cycles = numbers.to_numpy(dtype=np.float64, na_value=np.nan)
+            self._refuse(column, ~np.isfinite(cycles), log, name, "is not a number (cycle)")
+            return cycles
+        # pandas reads a number as nanoseconds since 1970, so 1767225600 (seconds) or -0.0
+        # would land in January 1970 without a word: on a time clock a number is refused.
+        self._refuse(column, _numbers(column), log, name,
+                     "is a number, not a time; write times as ISO 8601 text")
+        moments = pd.to_datetime(column, errors="coerce", utc=True, format="mixed")
+        moments = moments.dt.tz_convert(None)
+        self._refuse(column, moments.isna().to_numpy(), log, name, "is not a time")
+        # pandas parses far times at a coarser unit; the int64 nanoseconds this clock counts in
+        # hold only 1677-09-21 to 2262-04-11, and a cast past them wraps round silently.
+        outside = ((moments < pd.Timestamp.min) | (moments > pd.Timestamp.max)).to_numpy()
+        self._refuse(column, outside, log, name,
+                     f"is outside the times pandas can hold ({_TIME_RANGE})")
+        return moments.dt.as_unit("ns").to_numpy().view(np.int64)
+
+    @staticmethod
+    def _refuse(column: pd.Series, bad: np.ndarray, log: str, name: str, reason: str) -> None:
+        if not bad.any():
+            return
+        position = int(np.flatnonzero(bad)[0])
+        # A single snapshot time needs no row; a log row does (the API names it).
+        row = None if log == "at" and len(column) == 1 else column.index[position]
+        raise LogValueError(f"{_shown(column.iloc[position])} {reason}", log, name, row)
+
+    def show(self, value: float | int) -> str:
+        """A clock number as the text a user would write."""
+        return f"{value:g}" if self.cycles else pd.Timestamp(int(value)).isoformat()
 
     def span(self, span: str | float) -> float | int:
         amount = span_amount(span, self.spec.clock)
@@ -146,11 +184,18 @@ def build_snapshots(
 
     if at is not None:
         if names.size != 1:
-            raise DataError("explicit snapshot times need the readings of one entity")
+            shown = ", ".join(_shown(name) for name in names[:3])
+            raise LogValueError(
+                f"holds {names.size} entities ({shown}{', ...' if names.size > 3 else ''}); "
+                "a snapshot at a given time (or the latest reading) is built for one entity",
+                "readings", spec.readings.entity)
         if isinstance(at, str) and at == LATEST:
             snap_times = times[-1:]
         else:
-            snap_times = np.sort(clock.values(pd.Series(at).reset_index(drop=True), "at"))
+            snap_times = np.sort(clock.values(pd.Series(at).reset_index(drop=True), "at", "at"))
+            if snap_times[0] < times[0]:
+                # Every look-back feature would be missing: a snapshot of nothing, not of t.
+                raise LogValueError(f"no readings at or before {clock.show(snap_times[0])}", "at")
         snap_codes = np.zeros(snap_times.size, dtype=np.int64)
     else:
         snap_codes, snap_times = _cadence(spec, clock, codes, times, start, names.size)
@@ -318,8 +363,10 @@ def _name_columns(dataset: DatasetSpec, table: pd.DataFrame) -> pd.DataFrame:
 def _readings(spec: TimelineSpec, frame: pd.DataFrame, clock: _Clock) -> _Log:
     r = spec.readings
     _require(frame, "readings", [r.entity, r.time, *r.measurements, *r.states])
-    if frame[r.entity].isna().any():
-        raise DataError(f"readings: column {r.entity!r} (entity) has missing values")
+    missing = frame[r.entity].isna().to_numpy()
+    if missing.any():
+        raise LogValueError("the entity is missing", "readings", r.entity,
+                            frame.index[int(np.flatnonzero(missing)[0])])
     if len(frame) == 0:
         raise DataError("readings: no rows")
     out = pd.DataFrame({"__entity": frame[r.entity].astype(str).to_numpy()})
@@ -327,13 +374,13 @@ def _readings(spec: TimelineSpec, frame: pd.DataFrame, clock: _Clock) -> _Log:
         values = to_numbers(frame[column])
         bad = values.isna() & frame[column].notna()
         if bad.any():
-            example = frame[column][bad.to_numpy()].iloc[0]
-            raise DataError(f"readings: column {column!r} has a value that is not a number: "
-                            f"{example!r}")
+            position = int(np.flatnonzero(bad.to_numpy())[0])
+            raise LogValueError(f"{_shown(frame[column].iloc[position])} is not a number",
+                                "readings", column, frame.index[position])
         out[column] = values.to_numpy(dtype=np.float64)
     for column in r.states:
         out[column] = frame[column].to_numpy()
-    return _Log(np.empty(0), clock.values(frame[r.time], r.time), out)
+    return _Log(np.empty(0), clock.values(frame[r.time], "readings", r.time), out)
 
 
 def _failure_filter(spec: TimelineSpec) -> Callable[[pd.DataFrame], np.ndarray] | None:
@@ -357,9 +404,10 @@ def _events(
         frame = frame[keep(frame)]
     found = pd.Index(names).get_indexer(frame[entity].astype(str).to_numpy())
     known = found >= 0
-    frame = frame[known].reset_index(drop=True)
+    frame = frame[known]
     codes = found[known].astype(np.int64)
-    times = clock.values(frame[time], time)
+    times = clock.values(frame[time], label, time)  # before renumbering: errors name the row
+    frame = frame.reset_index(drop=True)
     order = np.lexsort((times, codes))
     return _Log(codes[order], times[order], frame.iloc[order].reset_index(drop=True))
 
@@ -456,3 +504,21 @@ def _join_attributes(
     lookup = frame[list(a.columns)].set_axis(keys.to_numpy())
     joined = lookup.reindex(table[spec.readings.entity].to_numpy()).reset_index(drop=True)
     return pd.concat([table.reset_index(drop=True), joined], axis=1)
+
+
+def _numbers(column: pd.Series) -> np.ndarray:
+    """Where a column holds numbers (or booleans) rather than text or times."""
+    if pd.api.types.is_numeric_dtype(column.dtype):
+        return column.notna().to_numpy()
+    if column.dtype != object or pd.api.types.infer_dtype(column, skipna=True) in _TIME_KINDS:
+        return np.zeros(len(column), dtype=bool)
+    return np.fromiter((isinstance(v, bool | int | float | np.number) for v in column),
+                       dtype=bool, count=len(column))
+
+
+def _shown(value: object) -> str:
+    """A value as an error message shows it: short, and without NumPy's type names."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    text = repr(value) if isinstance(value, str) else str(value)
+    return text if len(text) <= 40 else text[:37] + "..."

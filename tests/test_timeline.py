@@ -12,7 +12,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from service.errors import ConfigError
+from service.errors import ConfigError, DataError
 from service.spec import DatasetSpec, TimelineSpec, validate_model
 from service.timeline import (
     STATUS,
@@ -270,3 +270,84 @@ def test_timeline_config_errors_name_the_key(change: dict[str, object], message:
     data.update(change)
     with pytest.raises(ConfigError, match=message):
         validate_model(TimelineSpec, data, "config.yaml")
+
+
+def hourly_spec() -> TimelineSpec:
+    return TimelineSpec.model_validate({
+        "readings": {"entity": "case", "time": "time", "measurements": ["x"]},
+        "failures": {"entity": "case", "time": "time"},
+        "horizon": "2h",
+    })
+
+
+def hourly_readings(times: list[object]) -> pd.DataFrame:
+    return pd.DataFrame({"case": "c1", "time": pd.Series(times, dtype=object),
+                         "x": np.arange(float(len(times)))})
+
+
+@pytest.mark.parametrize("far", ["2300-01-01T00:00:00", "9999-12-31T23:59:59",
+                                 "0001-01-01T00:00:00"])
+def test_a_time_outside_pandas_nanosecond_range_stops_the_build(far: str) -> None:
+    # The builder counts time in datetime64[ns], which holds only 1677-09-21 to 2262-04-11
+    # (pandas user guide, "Timestamp limitations"); pandas parses a later or earlier time at a
+    # coarser unit, and the cast to nanoseconds used to wrap round silently (9999-12-31 became
+    # 1816-03-30, 2300-01-01 fell before the other readings). It must stop with one line,
+    # naming the row counted from 1 as the other table checks do.
+    readings = hourly_readings(["2025-03-01 00:00", "2025-03-01 01:00", far])
+    with pytest.raises(DataError) as caught:
+        build_snapshots(hourly_spec(), TimelineInputs(readings, None))
+    message = str(caught.value)
+    assert "\n" not in message and "row 3" in message and "'time'" in message
+    assert far in message and "2262" in message
+    # The same time as a datetime column read from Parquet (microseconds, which can hold it).
+    stored = readings.assign(
+        time=pd.to_datetime(readings["time"], format="ISO8601").astype("datetime64[us]"))
+    with pytest.raises(DataError, match=r"row 3.*2262"):
+        build_snapshots(hourly_spec(), TimelineInputs(stored, None))
+
+
+@pytest.mark.parametrize("number", [1767225600, -0.0])
+def test_a_number_is_no_calendar_time(number: float) -> None:
+    # pandas reads a number as nanoseconds since 1970: 1767225600 (2026-01-01 in Unix
+    # seconds) would be 1970-01-01 00:00:01.77 and -0.0 the epoch itself, both silently.
+    readings = hourly_readings(["2025-03-01 00:00", number])
+    with pytest.raises(DataError, match=r"row 2.*is a number, not a time"):
+        build_snapshots(hourly_spec(), TimelineInputs(readings, None))
+    numeric = pd.DataFrame({"case": "c1", "time": [1767225600, 1767229200], "x": [1.0, 2.0]})
+    with pytest.raises(DataError, match=r"row 1.*is a number, not a time"):
+        build_snapshots(hourly_spec(), TimelineInputs(numeric, None))
+
+
+def test_a_snapshot_time_before_every_reading_is_refused() -> None:
+    # A snapshot before the first reading has an empty look-back window: every feature would
+    # be missing, a snapshot of nothing rather than of the time asked for.
+    readings = hourly_readings(["2025-03-01 00:00", "2025-03-01 01:00"])
+    with pytest.raises(DataError, match=r"at: no readings at or before 2025-02-28T23:59:00$"):
+        build_snapshots(hourly_spec(), TimelineInputs(readings, None),
+                        at=pd.Series(["2025-02-28 23:59"]))
+    # At the first reading itself the window holds that reading (features read t <= at).
+    built = build_snapshots(hourly_spec(), TimelineInputs(readings, None),
+                            at=pd.Series(["2025-03-01 00:00"]))
+    assert built["time"].tolist() == [pd.Timestamp("2025-03-01 00:00")]
+
+
+def test_snapshot_times_for_two_entities_say_so_without_an_explicit_time() -> None:
+    # The latest-reading snapshot (no time given) is built for one entity; the message must not
+    # speak of explicit times the caller never gave.
+    readings = pd.concat([hourly_readings(["2025-03-01 00:00"]),
+                          hourly_readings(["2025-03-01 00:00"]).assign(case="c2")])
+    with pytest.raises(DataError) as caught:
+        build_snapshots(hourly_spec(), TimelineInputs(readings, None), at="latest")
+    assert "2 entities ('c1', 'c2')" in str(caught.value)
+    assert "explicit" not in str(caught.value)
+
+
+def test_an_infinite_cycle_is_refused() -> None:
+    # A JSON integer past float64's range reads as infinity; no cycle is infinite.
+    readings = readings_for({"a": 5})
+    with pytest.raises(DataError, match=r"at: inf is not a number \(cycle\)"):
+        build_snapshots(cycle_spec(), TimelineInputs(readings, None),
+                        at=pd.Series([float("inf")]))
+    # A number is a fine snapshot time on a cycle clock.
+    built = build_snapshots(cycle_spec(), TimelineInputs(readings, None), at=pd.Series([3]))
+    assert built["cycle"].tolist() == [3]
