@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from service.bundle import sha256_file
-from service.errors import DataError
+from service.errors import DataError, quoted
 from service.spec import DatasetSpec, TimelineSpec, span_amount
 from service.tables import read_table, to_numbers
 from service.timeline_labels import CENSORED, DOWN, NEGATIVE, POSITIVE, EventLog, label_status
@@ -520,5 +520,7 @@ def _shown(value: object) -> str:
     """A value as an error message shows it: short, and without NumPy's type names."""
     if isinstance(value, np.generic):
         value = value.item()
-    text = repr(value) if isinstance(value, str) else str(value)
+    if isinstance(value, str):
+        return quoted(value, 40)
+    text = str(value)
     return text if len(text) <= 40 else text[:37] + "..."
