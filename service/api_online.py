@@ -14,7 +14,7 @@ import pandas as pd
 from service.api_models import TimelineScoreRequest
 from service.api_schema import json_type, number_error
 from service.bundle import Bundle
-from service.errors import CauselineError, first_line
+from service.errors import CauselineError, first_line, quoted
 from service.problems import FieldError, Problem
 from service.spec import TimelineSpec
 from service.timeline import LogValueError, TimelineInputs, entity_features
@@ -94,8 +94,9 @@ def check_request(
             first = (row, str(entity))
         elif entity is not None and first is not None and str(entity) != first[1] and not second:
             second = True  # once: every later row of that entity would say the same
-            found.append((r.entity, f"a second entity ({str(entity)!r}; readings.{first[0]} has "
-                                    f"{first[1]!r}): send the readings of one entity"))
+            found.append((r.entity, f"a second entity ({quoted(str(entity))}; readings."
+                                    f"{first[0]} has {quoted(first[1])}): send the readings of "
+                                    "one entity"))
         if reading.get(r.time) is not None:
             found.append((r.time, _time_error(reading[r.time], cycles)))
         found += [(name, number_error(reading.get(name))) for name in r.measurements]
