@@ -104,6 +104,14 @@ def check_request(
                   for name in r.states if isinstance(reading.get(name), list | dict)]
         errors += [FieldError(field=f"readings.{row}.{name}", message=message)
                    for name, message in found if message]
+    a = spec.attributes
+    if a is not None and payload.attributes and first is not None:
+        # The join is by entity: another entity's attributes would leave these ones missing.
+        theirs = payload.attributes.get(a.entity)
+        if theirs is not None and str(theirs) != first[1]:
+            errors.append(FieldError(
+                field=f"attributes.{a.entity}",
+                message=f"{quoted(str(theirs))} is not the readings' entity {quoted(first[1])}"))
     return errors
 
 

@@ -275,6 +275,13 @@ def test_unknown_field_in_a_reading(client: TestClient, body: dict, built) -> No
         assert other.post("/v1/score/timeline", json=body).status_code == 200
 
 
+def test_attributes_of_another_entity(client: TestClient, body: dict) -> None:
+    # Attributes join by entity; another case's would leave this one's missing, silently.
+    body["attributes"]["case_id"] = "DC-9999"
+    errors = _refused(client, body)
+    assert [e["field"] for e in errors] == ["attributes.case_id"]
+
+
 def test_infinite_at_is_a_plain_message(client: TestClient, body: dict) -> None:
     # 1e400 is past float64's range and parses as infinity; the message used to show NumPy's
     # np.float64(inf) under the field `readings`.
