@@ -139,6 +139,11 @@ def _header(data: ReportData) -> str:
         ("ungrouped", f"{counts.get('ungrouped', 0):,}"),
         ("gone since last run", f"{len(s.get('gone', [])):,}"),
     ]
+    # Input the run did not group, so a reader of the report alone knows it exists.
+    if counts.get("rejected"):
+        facts.append(("rows rejected (rejects.csv)", f"{counts['rejected']:,}"))
+    if counts.get("repeats_dropped"):
+        facts.append(("repeated log entries dropped", f"{counts['repeats_dropped']:,}"))
     fact_html = "".join(f'<div class="fact"><b>{escape(v)}</b>{escape(k)}</div>' for k, v in facts)
     return (
         f"<header><h1>{escape(data.title)}</h1>"

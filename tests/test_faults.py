@@ -425,6 +425,7 @@ def test_malformed_rows_go_to_rejects_and_good_rows_are_grouped(
 
     summary = json.loads((out / SUMMARY).read_text("utf-8"))
     assert summary["counts"]["rejected"] == 6
+    assert "<b>6</b>rows rejected (rejects.csv)" in (out / "report.html").read_text("utf-8")
     assert summary["counts"]["rows_read"] == len(march)
     # Every labelled event not rejected is grouped (or listed as ungrouped): none is lost.
     expected = set(march.loc[march["went_warm_24h"] == 1, "snapshot_id"]) - set(bad.values())

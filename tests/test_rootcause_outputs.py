@@ -257,3 +257,7 @@ def test_repeated_event_ids_in_a_prediction_log_count_once(bundle, fleet, tmp_pa
     pd.testing.assert_frame_equal(b.groups, a.groups)
     pd.testing.assert_frame_equal(b.event_groups, a.event_groups)
     assert int(b.event_groups["event_id"].isna().sum()) == len(blank)
+    # The report says so too, for a reader who sees only it.
+    report = (tmp_path / "b" / "report.html").read_text("utf-8")
+    assert f"<b>{2 * len(events):,}</b>repeated log entries dropped" in report
+    assert "repeated log entries dropped" not in (tmp_path / "a" / "report.html").read_text()
