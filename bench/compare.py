@@ -85,13 +85,13 @@ def child(root: Path, bundle: Path, kind: str, clients: int) -> None:
         raise SystemExit(f"service was imported from {service.__file__}, not from {root}")
 
     bodies = [json.dumps({"events": [event]}).encode() for event in _events(bundle)]
-    log = tempfile.mkdtemp(prefix="causeline-compare-log-")
+    log = tempfile.TemporaryDirectory(prefix="causeline-compare-log-")
 
     async def main() -> None:
         if kind == "bare":
             app = bare_app()
         else:
-            app = create_app(Settings(bundle=bundle, prediction_log=log, access_log=False))
+            app = create_app(Settings(bundle=bundle, prediction_log=log.name, access_log=False))
         async with app.router.lifespan_context(app):
             await _drive(app, bodies, 400, clients)  # warm-up: numba, caches
             print("ready", flush=True)
@@ -100,15 +100,52 @@ def child(root: Path, bundle: Path, kind: str, clients: int) -> None:
                 seconds = await _drive(app, bodies, int(line), clients)
                 print(f"{seconds * 1e6:.2f}", flush=True)
 
-    asyncio.run(main())
+    with log:
+        asyncio.run(main())
 
 
-def _export(revision: str) -> Path:
-    folder = Path(tempfile.mkdtemp(prefix="causeline-compare-"))
+def _export(revision: str, folder: Path) -> Path:
     archive = subprocess.run(["git", "archive", revision, *TREES], cwd=ROOT, check=True,
                              capture_output=True).stdout
     subprocess.run(["tar", "-x", "-C", str(folder)], input=archive, check=True)
     return folder
+
+
+def _measure(
+    roots: dict[str, Path], bundle: Path, args: argparse.Namespace
+) -> dict[str, list[float]]:
+    """Microseconds per request of each build, burst by burst, all pinned to one CPU."""
+    cpus = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
+    processes = {}
+    for name, root in roots.items():
+        command = [sys.executable, __file__, "--bundle", str(bundle), "--clients",
+                   str(args.clients), "--child", str(root), "bare" if name == "bare" else "score"]
+        process = subprocess.Popen(command, cwd=root, stdin=subprocess.PIPE,
+                                   stdout=subprocess.PIPE, text=True)
+        if cpus:
+            os.sched_setaffinity(process.pid, {cpus[0]})
+        processes[name] = process
+    times: dict[str, list[float]] = {name: [] for name in processes}
+    try:
+        for name, process in processes.items():
+            assert process.stdout is not None
+            if process.stdout.readline().strip() != "ready":
+                raise SystemExit(f"the {name} build did not start")
+        for number in range(args.rounds):
+            order = ["bare", "base", "new"] if number % 2 == 0 else ["bare", "new", "base"]
+            for name in order:
+                process = processes[name]
+                assert process.stdin is not None and process.stdout is not None
+                process.stdin.write(f"{args.requests}\n")
+                process.stdin.flush()
+                times[name].append(float(process.stdout.readline()))
+    finally:
+        for process in processes.values():
+            if process.stdin is not None and process.poll() is None:
+                process.stdin.write("\n")
+                process.stdin.close()
+            process.wait(60)
+    return times
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -127,38 +164,12 @@ def main(argv: list[str] | None = None) -> int:
     sys.path.insert(0, str(ROOT))
     from bench.common import demo_bundle, report
 
-    bundle = args.bundle or demo_bundle(Path(tempfile.mkdtemp(prefix="causeline-compare-")))
-    roots = {"bare": ROOT, "base": _export(args.base), "new": ROOT}
-    cpus = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
-    processes = {}
-    for name, root in roots.items():
-        command = [sys.executable, __file__, "--bundle", str(bundle), "--clients",
-                   str(args.clients), "--child", str(root), "bare" if name == "bare" else "score"]
-        process = subprocess.Popen(command, cwd=root, stdin=subprocess.PIPE,
-                                   stdout=subprocess.PIPE, text=True)
-        if cpus:
-            os.sched_setaffinity(process.pid, {cpus[0]})
-        processes[name] = process
-    try:
-        for name, process in processes.items():
-            assert process.stdout is not None
-            if process.stdout.readline().strip() != "ready":
-                raise SystemExit(f"the {name} build did not start")
-        times: dict[str, list[float]] = {name: [] for name in processes}
-        for number in range(args.rounds):
-            order = ["bare", "base", "new"] if number % 2 == 0 else ["bare", "new", "base"]
-            for name in order:
-                process = processes[name]
-                assert process.stdin is not None and process.stdout is not None
-                process.stdin.write(f"{args.requests}\n")
-                process.stdin.flush()
-                times[name].append(float(process.stdout.readline()))
-    finally:
-        for process in processes.values():
-            if process.stdin is not None and process.poll() is None:
-                process.stdin.write("\n")
-                process.stdin.close()
-            process.wait(60)
+    with tempfile.TemporaryDirectory(prefix="causeline-compare-") as scratch:
+        bundle = args.bundle or demo_bundle(Path(scratch) / "demo")
+        base = Path(scratch) / "base"
+        base.mkdir()
+        times = _measure({"bare": ROOT, "base": _export(args.base, base), "new": ROOT}, bundle,
+                         args)
     for name, values in times.items():
         report(f"compare_{name}_us_per_request", statistics.median(values))
     differences = [new - base for base, new in zip(times["base"], times["new"], strict=True)]
