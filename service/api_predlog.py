@@ -93,12 +93,12 @@ class BackgroundLog:
             with self._condition:
                 if not self._stopping:
                     self._condition.wait(min(self.fsync_seconds, LINGER_SECONDS))
-                pending = "".join(self._queue)
+                pending, count = "".join(self._queue), self._pending
                 self._queue.clear()
                 self._pending = 0
                 stopping = self._stopping
             if pending:
-                self._write(pending)
+                self._write(pending, count)
             if stopping or time.monotonic() - last_sync >= self.fsync_seconds:
                 self._sync()
                 last_sync = time.monotonic()
@@ -106,12 +106,12 @@ class BackgroundLog:
                 self._close()
                 return
 
-    def _write(self, lines: str) -> None:
-        records = lines.count("\n")
+    def _write(self, lines: str, records: int) -> None:
         try:
             if self._writer is None:
                 self._writer = PredictionLogWriter(self.folder)
-            self.written += self._writer.append_lines(lines)
+            self._writer.append_lines(lines)
+            self.written += records
             self.metrics.log_written.inc(records)
             if self.error is not None:
                 logger.info("prediction log %s: writing again", self.folder)

@@ -8,7 +8,6 @@ as :class:`service.problems.FieldError` naming the event and the field.
 from __future__ import annotations
 
 import math
-import sys
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -17,10 +16,9 @@ import numpy as np
 from service.bundle import Bundle
 from service.features import RowProblem
 from service.problems import FieldError
+from service.tables import LARGEST
 
 _ABSENT = object()
-# JSON integers have no size limit; past this one they cannot become a float64.
-LARGEST = sys.float_info.max
 MAX_TEXT = 256  # ids, times and entities; and field names echoed in errors
 
 

@@ -16,7 +16,7 @@ from __future__ import annotations
 import json
 import os
 import threading
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -41,19 +41,19 @@ class PredictionLogWriter:
         self._handle: Any = None
         self._count = 0
 
-    def append(self, records: Iterable[Mapping[str, Any]]) -> int:
+    def append(self, records: Sequence[Mapping[str, Any]]) -> int:
         """Write ``records`` as whole lines, flushed to the OS; returns how many were written."""
-        return self.append_lines(render_lines(records))
+        self.append_lines(render_lines(records))
+        return len(records)
 
-    def append_lines(self, lines: str) -> int:
-        """Write lines from :func:`render_lines` as they are; returns how many were written."""
+    def append_lines(self, lines: str) -> None:
+        """Write lines from :func:`render_lines` as they are, flushed to the OS."""
         if not lines:
-            return 0
+            return
         with self._lock:
             handle = self._current()
             handle.write(lines)
             handle.flush()
-            return lines.count("\n")
 
     def sync(self) -> None:
         """Force written lines to disk (fsync), e.g. on a timer or at shutdown."""

@@ -95,10 +95,7 @@ def latest_entries(table: pd.DataFrame, id_column: str) -> np.ndarray:
         return keep
     ids = table[id_column].astype("string")
     has_id = (ids.str.strip() != "").fillna(False).to_numpy(dtype=bool)
-    if LOG_TIME in table.columns:
-        times = pd.to_datetime(table[LOG_TIME], errors="coerce", utc=True, format="mixed")
-    else:
-        times = pd.Series(pd.NaT, index=table.index, dtype="datetime64[ns, UTC]")
+    times = _utc_times(table, LOG_TIME)
     order = pd.DataFrame({"id": ids, "time": times, "position": np.arange(len(table))})[has_id]
     order = order.sort_values(["time", "position"], na_position="first", kind="stable")
     keep[has_id] = False
@@ -126,10 +123,13 @@ def parse_time(text: str | None, option: str) -> pd.Timestamp | None:
 
 def event_times(events: EventInput) -> pd.Series:
     """Each row's time (UTC), NaT where there is no time column or a value is not a time."""
-    column = events.time_column
-    if column is None or column not in events.table.columns:
-        return pd.Series(pd.NaT, index=events.table.index, dtype="datetime64[ns, UTC]")
-    return pd.to_datetime(events.table[column], errors="coerce", utc=True, format="mixed")
+    return _utc_times(events.table, events.time_column)
+
+
+def _utc_times(table: pd.DataFrame, column: str | None) -> pd.Series:
+    if column is None or column not in table.columns:
+        return pd.Series(pd.NaT, index=table.index, dtype="datetime64[ns, UTC]")
+    return pd.to_datetime(table[column], errors="coerce", utc=True, format="mixed")
 
 
 def window_mask(

@@ -18,7 +18,7 @@ _CSV = (".csv", ".csv.gz", ".txt")
 _JSONL = (".jsonl", ".ndjson", ".jsonl.gz")
 _PARQUET = (".parquet", ".pq")
 SUFFIXES = _CSV + _JSONL + _PARQUET
-_LARGEST = sys.float_info.max
+LARGEST = sys.float_info.max  # the largest float64: integers past it cannot become one
 
 
 def table_format(path: Path) -> str:
@@ -101,7 +101,7 @@ def to_numbers(values: pd.Series) -> pd.Series:
 
 
 def _bounded(value: object) -> object:
-    if isinstance(value, int) and not isinstance(value, bool) and abs(value) > _LARGEST:
+    if isinstance(value, int) and not isinstance(value, bool) and abs(value) > LARGEST:
         return math.inf if value > 0 else -math.inf
     return value
 
