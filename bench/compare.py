@@ -29,7 +29,7 @@ import tempfile  # noqa: E402
 import time  # noqa: E402
 from typing import Any  # noqa: E402
 
-TREES = ["service", "causeline", "bench", "fixtures"]
+TREES = ["service", "training", "causeline", "bench", "fixtures"]
 
 
 def _scope(body: bytes) -> dict[str, Any]:
@@ -75,14 +75,20 @@ async def _drive(app: Any, bodies: list[bytes], requests: int, clients: int) -> 
 
 def child(root: Path, bundle: Path, kind: str, clients: int) -> None:
     """Serve bursts on request: read a request count per line, print microseconds per request."""
-    sys.path.insert(0, str(root))
-    import service
-    from bench.serving import _events, bare_app
-    from service.api import create_app
-    from service.settings import Settings
+    shim = tempfile.TemporaryDirectory(prefix="causeline-compare-shim-")
+    if _import_from(root, Path(shim.name)):
+        from causeline.service.api.app import create_app
+        from causeline.service.api.settings import Settings
+        service_file = sys.modules["causeline.service"].__file__
+    else:  # revisions before it: a top-level `service` package
+        from service.settings import Settings  # type: ignore[no-redef]
 
-    if not Path(service.__file__).resolve().is_relative_to(root.resolve()):
-        raise SystemExit(f"service was imported from {service.__file__}, not from {root}")
+        from service.api import create_app  # type: ignore[no-redef]
+        service_file = sys.modules["service"].__file__
+    from bench.serving import _events, bare_app
+
+    if not Path(str(service_file)).resolve().is_relative_to(root.resolve()):
+        raise SystemExit(f"service was imported from {service_file}, not from {root}")
 
     bodies = [json.dumps({"events": [event]}).encode() for event in _events(bundle)]
     log = tempfile.TemporaryDirectory(prefix="causeline-compare-log-")
@@ -100,8 +106,29 @@ def child(root: Path, bundle: Path, kind: str, clients: int) -> None:
                 seconds = await _drive(app, bodies, int(line), clients)
                 print(f"{seconds * 1e6:.2f}", flush=True)
 
-    with log:
+    with log, shim:
         asyncio.run(main())
+
+
+def _import_from(root: Path, shim: Path) -> bool:
+    """Make ``import causeline`` load ``root``'s code, not the installed working tree's.
+
+    The package's subpackages live in the top-level folders ``service/`` and ``training/``;
+    a ``causeline`` folder of links puts them where Python looks for ``causeline.service``.
+    False for the older layout, whose top-level ``service`` package imports from ``root``.
+    """
+    sys.path.insert(0, str(root))
+    if not (root / "service" / "api").is_dir():
+        return False
+    package = shim / "causeline"
+    package.mkdir()
+    for item in (root / "causeline").iterdir():
+        (package / item.name).symlink_to(item)
+    for folder in ("service", "training"):
+        if (root / folder).is_dir():
+            (package / folder).symlink_to(root / folder)
+    sys.path.insert(0, str(shim))
+    return True
 
 
 def _export(revision: str, folder: Path) -> Path:

@@ -17,10 +17,9 @@ from bench.common import demo_bundle, rate, report
 
 def main() -> None:
     import pandas as pd
-
-    from service.bundle import load_bundle
-    from service.explain import Explainer
-    from service.treeshap import contributions
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.explain.explainer import Explainer
+    from causeline.service.explain.treeshap import contributions
 
     path = demo_bundle()
     bundle = load_bundle(path)

@@ -24,10 +24,9 @@ def main() -> None:
     import lightgbm as lgb
     import numpy as np
     import pandas as pd
-
-    from service.bundle import load_bundle
-    from service.treeshap import contributions
-    from training.fit import BASE_PARAMETERS
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.explain.treeshap import contributions
+    from causeline.training.fit import BASE_PARAMETERS
 
     path = demo_bundle()
     bundle = load_bundle(path)
@@ -40,7 +39,7 @@ def main() -> None:
     rows = x[-ROWS:]
 
     started = time.perf_counter()
-    from service.fastshap import FastTreeExplainer
+    from causeline.service.explain.fastshap import FastTreeExplainer
 
     explainer = FastTreeExplainer(booster)
     prepared = time.perf_counter()

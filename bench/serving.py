@@ -179,8 +179,7 @@ def _mean_batch(port: int) -> float:
 
 def _events(bundle: Path, rows: int = 200) -> list[dict[str, Any]]:
     import pandas as pd
-
-    from service.bundle import load_bundle
+    from causeline.service.bundle.load import load_bundle
 
     loaded = load_bundle(bundle)
     columns = [*loaded.builder.required_columns, loaded.spec.id]

@@ -8,9 +8,14 @@ from common import ROOT, rate, report
 
 
 def main() -> None:
+    from causeline.service.features.snapshots import (
+        TimelineInputs,
+        build_snapshots,
+        entity_features,
+    )
+    from causeline.training.config import load_config
+
     from fixtures.demo.timeline import generate_timeline
-    from service.timeline import TimelineInputs, build_snapshots, entity_features
-    from training.config import load_config
 
     config = load_config(ROOT / "fixtures" / "demo" / "timeline.yaml")
     started = time.perf_counter()

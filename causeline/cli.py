@@ -15,7 +15,7 @@ from collections import Counter
 from collections.abc import Sequence
 from pathlib import Path
 
-from service.errors import CauselineError
+from causeline.service.errors import CauselineError
 
 EXIT_USER_ERROR = 2
 EXIT_INTERNAL_ERROR = 3
@@ -113,7 +113,7 @@ def _has_raw_logs(args: argparse.Namespace) -> bool:
 
 
 def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
-    from service.timeline import RawPaths
+    from causeline.service.features.snapshots import RawPaths
 
     if args.readings is None:
         raise CauselineError("give --readings (and --events, maybe --actions, --attributes)")
@@ -121,9 +121,9 @@ def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
 
 
 def _build(args: argparse.Namespace) -> int:
-    from service.timeline import feature_names
-    from training.build import build, timeline_of
-    from training.config import load_config
+    from causeline.service.features.snapshots import feature_names
+    from causeline.training.build import build, timeline_of
+    from causeline.training.config import load_config
 
     if args.list_features:
         for name in feature_names(timeline_of(load_config(args.config))):
@@ -139,7 +139,7 @@ def _build(args: argparse.Namespace) -> int:
 
 
 def _train(args: argparse.Namespace) -> int:
-    from training.pipeline import train, train_timeline
+    from causeline.training.pipeline import train, train_timeline
 
     raw = _has_raw_logs(args)
     if (args.data is None) == (not raw):
@@ -164,13 +164,13 @@ def _train(args: argparse.Namespace) -> int:
 
 
 def _explain(args: argparse.Namespace) -> int:
-    from service.bundle import load_bundle
-    from service.csvsafe import escape_frame
-    from service.explain import Explainer
-    from service.rejects import read_lenient, rejects_path, write_rejects
-    from service.report import explanation_frame, explanation_records
-    from service.storage import atomic_file
-    from service.tables import table_format, write_table
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.explain.explainer import Explainer
+    from causeline.service.explain.records import explanation_frame, explanation_records
+    from causeline.service.files.rejects import read_lenient, rejects_path, write_rejects
+    from causeline.service.files.spreadsheet import escape_frame
+    from causeline.service.files.storage import atomic_file
+    from causeline.service.files.tables import table_format, write_table
 
     if args.top is not None and args.top < 1:
         raise CauselineError("--top must be at least 1")
@@ -184,8 +184,8 @@ def _explain(args: argparse.Namespace) -> int:
         # The same build as `causeline build`, so scores match training's features exactly.
         import numpy as np
 
-        from service.rejects import Lenient, empty_rejects
-        from service.timeline import read_inputs, snapshot_features
+        from causeline.service.features.snapshots import read_inputs, snapshot_features
+        from causeline.service.files.rejects import Lenient, empty_rejects
 
         inputs = read_inputs(bundle.spec, _raw_paths(args))
         table = snapshot_features(bundle.spec, inputs, latest=args.latest)
@@ -217,8 +217,8 @@ def _explain(args: argparse.Namespace) -> int:
 
 
 def _rootcause(args: argparse.Namespace) -> int:
-    from service.bundle import load_bundle
-    from service.rootcause_run import RootCauseOptions, run_rootcause
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.rootcause.run import RootCauseOptions, run_rootcause
 
     options = RootCauseOptions(
         predicted=args.predicted, since=args.since, until=args.until,
@@ -227,7 +227,7 @@ def _rootcause(args: argparse.Namespace) -> int:
     if args.fit_sample is not None and (args.engine != "dask" or args.fit_sample < 100):
         raise CauselineError("--fit-sample needs --engine dask and at least 100 events")
     if _use_dask(args):
-        from service.dask_rootcause import SAMPLE_SIZE, run_rootcause_dask
+        from causeline.service.dask.rootcause import SAMPLE_SIZE, run_rootcause_dask
 
         result = run_rootcause_dask(
             load_bundle(args.bundle), args.events, args.out, options, _dask_settings(args),
@@ -255,8 +255,8 @@ def _rootcause(args: argparse.Namespace) -> int:
 
 
 def _serve(args: argparse.Namespace) -> int:
-    from service.serve import run
-    from service.settings import Settings
+    from causeline.service.api.serve import run
+    from causeline.service.api.settings import Settings
 
     flags = {"bundle": args.bundle, "host": args.host, "port": args.port, "workers": args.workers}
     run(Settings.from_env().with_flags(flags))
@@ -282,7 +282,7 @@ def _use_dask(args: argparse.Namespace) -> bool:
 
 
 def _dask_settings(args: argparse.Namespace):  # type: ignore[no-untyped-def]
-    from service.dask_engine import DaskSettings
+    from causeline.service.dask.engine import DaskSettings
 
     return DaskSettings(scheduler=args.scheduler)
 
@@ -292,8 +292,8 @@ def _progress(message: str) -> None:
 
 
 def _explain_dask(args: argparse.Namespace, bundle) -> int:  # type: ignore[no-untyped-def]
-    from service.dask_engine import explain_partitions
-    from service.rejects import rejects_path
+    from causeline.service.dask.engine import explain_partitions
+    from causeline.service.files.rejects import rejects_path
 
     totals = explain_partitions(
         bundle, args.input, args.out, args.top, args.all_contributions, _dask_settings(args)

@@ -6,9 +6,8 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
-
-from service.bundle import Bundle, load_bundle
-from training.pipeline import train
+from causeline.service.bundle.load import Bundle, load_bundle
+from causeline.training.pipeline import train
 
 ROOT = Path(__file__).resolve().parent.parent
 FIXTURES = ROOT / "fixtures"

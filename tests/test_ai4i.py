@@ -8,8 +8,7 @@ from power outside 3500-9000 W, OSF from tool wear x torque over a limit, TWF fr
 from __future__ import annotations
 
 import numpy as np
-
-from service.explain import Explainer
+from causeline.service.explain.explainer import Explainer
 
 MODES = ["TWF", "HDF", "PWF", "OSF", "RNF"]
 MECHANISM_CODES = {

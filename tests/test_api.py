@@ -16,17 +16,24 @@ import jsonschema
 import pandas as pd
 import pytest
 import yaml
+from causeline.service.api import batcher as api_scoring
+from causeline.service.api.app import create_app
+from causeline.service.api.logwriter import BackgroundLog
+from causeline.service.api.metrics import Metrics
+from causeline.service.api.settings import Settings
+from causeline.service.bundle.load import (
+    CHECKSUMS,
+    MANIFEST,
+    MODEL,
+    Bundle,
+    checksum_text,
+    load_bundle,
+)
+from causeline.service.files.predlog import read_prediction_log
 from fastapi.testclient import TestClient
 from prometheus_client.parser import text_string_to_metric_families
 
 from causeline.cli import main as causeline
-from service import api_scoring
-from service.api import create_app
-from service.api_predlog import BackgroundLog
-from service.bundle import CHECKSUMS, MANIFEST, MODEL, Bundle, checksum_text, load_bundle
-from service.metrics import Metrics
-from service.predlog import read_prediction_log
-from service.settings import Settings
 from tests.conftest import DEMO_CONFIG
 
 KEY = "test-key-0123456789"

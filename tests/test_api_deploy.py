@@ -6,9 +6,8 @@ import re
 from pathlib import Path
 
 import yaml
-
-from service.api import create_app
-from service.settings import PREFIX, Settings
+from causeline.service.api.app import create_app
+from causeline.service.api.settings import PREFIX, Settings
 
 DEPLOY = Path(__file__).resolve().parent.parent / "deploy"
 

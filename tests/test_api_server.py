@@ -16,9 +16,9 @@ from typing import Any
 import httpx
 import pandas as pd
 import pytest
+from causeline.service.bundle.load import Bundle
+from causeline.service.files.predlog import read_prediction_log
 
-from service.bundle import Bundle
-from service.predlog import read_prediction_log
 from tests.test_api import KEY, OpenAPICheck, demo_events, rewrite_bundle, tamper
 
 

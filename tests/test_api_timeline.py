@@ -13,19 +13,19 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from causeline.service.api.app import create_app
+from causeline.service.api.bodies import TimelineScoreRequest
+from causeline.service.api.settings import Settings
+from causeline.service.api.timeline import check_request
+from causeline.service.bundle.load import load_bundle
+from causeline.service.explain.explainer import Explainer
+from causeline.training.build import RawPaths, build
+from causeline.training.pipeline import train
 from fastapi.testclient import TestClient
 
 from fixtures.demo.generate import generate
 from fixtures.demo.timeline import from_frame
-from service.api import create_app
-from service.api_models import TimelineScoreRequest
-from service.api_online import check_request
-from service.bundle import load_bundle
-from service.explain import Explainer
-from service.settings import Settings
 from tests.conftest import FIXTURES
-from training.build import RawPaths, build
-from training.pipeline import train
 
 TIMELINE_CONFIG = FIXTURES / "demo" / "timeline.yaml"
 
@@ -74,7 +74,7 @@ def test_online_snapshot_scores_like_the_batch_build(built, tmp_path: Path) -> N
     assert response.status_code == 200, response.text
     online = response.json()["results"][0]
 
-    from service.bundle import load_bundle
+    from causeline.service.bundle.load import load_bundle
 
     bundle = load_bundle(bundle_path)
     row = snapshots[(snapshots["case_id"] == case)

@@ -15,15 +15,15 @@ import lightgbm as lgb
 import numpy as np
 import pandas as pd
 import pytest
+from causeline.service.dask import engine as dask_engine
+from causeline.service.dask.engine import DaskSettings
+from causeline.service.dask.rootcause import run_rootcause_dask
+from causeline.service.explain.explainer import Explainer
+from causeline.service.rootcause.run import EVENT_GROUPS, GROUPS, REJECTS, run_rootcause
 from distributed import LocalCluster
 from sklearn.metrics import adjusted_rand_score
 
 from causeline.cli import main
-from service import dask_engine
-from service.dask_engine import DaskSettings
-from service.dask_rootcause import run_rootcause_dask
-from service.explain import Explainer
-from service.rootcause_run import EVENT_GROUPS, GROUPS, REJECTS, run_rootcause
 
 PARTS = 4
 EXPLAIN_ROWS = 12_000
@@ -273,7 +273,8 @@ def test_client_state_does_not_grow_with_the_events(  # type: ignore[no-untyped-
     """
     import pickle
 
-    from service import dask_rootcause, rootcause_tally
+    from causeline.service.dask import rootcause as dask_rootcause
+    from causeline.service.rootcause import tally as rootcause_tally
 
     monkeypatch.setattr(rootcause_tally, "DRIVER_SAMPLE", 50)
     sizes: dict[str, int] = {}

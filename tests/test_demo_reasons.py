@@ -7,8 +7,8 @@ check against known ground truth rather than against the model's own output.
 from __future__ import annotations
 
 import numpy as np
+from causeline.service.explain.explainer import Explainer
 
-from service.explain import Explainer
 from tests.conftest import DEMO_CAUSE_CODES
 
 CAUSE_CODES = DEMO_CAUSE_CODES

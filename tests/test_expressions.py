@@ -4,9 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
-from service.errors import ConfigError
-from service.expressions import parse_expression
+from causeline.service.errors import ConfigError
+from causeline.service.spec.expressions import parse_expression
 
 
 def test_arithmetic_matches_numpy() -> None:

@@ -17,11 +17,10 @@ import lightgbm as lgb
 import numpy as np
 import pytest
 import shap
+from causeline.service.explain.fastshap import FallbackWarning, FastTreeExplainer, supports
+from causeline.service.explain.treeshap import contributions
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-
-from service.fastshap import FallbackWarning, FastTreeExplainer, supports
-from service.treeshap import contributions
 
 TOLERANCE = 1e-9
 SETTINGS = settings(

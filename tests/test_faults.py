@@ -32,16 +32,23 @@ import httpx
 import numpy as np
 import pandas as pd
 import pytest
+from causeline.service.api.app import create_app
+from causeline.service.api.settings import Settings
+from causeline.service.bundle.load import (
+    CHECKSUMS,
+    MANIFEST,
+    MODEL,
+    Bundle,
+    checksum_text,
+    load_bundle,
+)
+from causeline.service.errors import BundleError
+from causeline.service.files import predlog
+from causeline.service.rootcause.run import EVENT_GROUPS, GROUPS, REJECTS, REPORT
+from causeline.service.rootcause.tracking import SUMMARY
 from fastapi.testclient import TestClient
 
 from causeline.cli import main as causeline
-from service import predlog
-from service.api import create_app
-from service.bundle import CHECKSUMS, MANIFEST, MODEL, Bundle, checksum_text, load_bundle
-from service.errors import BundleError
-from service.rootcause_run import EVENT_GROUPS, GROUPS, REJECTS, REPORT
-from service.settings import Settings
-from service.tracking import SUMMARY
 from tests.conftest import DEMO_CONFIG
 from tests.test_api import KEY, demo_events, metric, rewrite_bundle, tamper
 from tests.test_api_server import free_port, wait_until
@@ -481,8 +488,8 @@ def test_integers_too_large_to_read_are_rejected_rows_not_a_refused_file(
 def test_integer_too_large_for_a_float_in_a_table_is_scored_as_missing() -> None:
     # pandas keeps such an integer as a Python int in an object column (a CSV cell of 400
     # digits, say); its numeric conversion raises on it instead of coercing it.
-    from service.features import FeatureBuilder
-    from service.spec import FeatureSpec
+    from causeline.service.features.builder import FeatureBuilder
+    from causeline.service.spec.dataset import FeatureSpec
 
     builder = FeatureBuilder([FeatureSpec(name="x", kind="numeric", role="observable")])
     table = pd.DataFrame({"x": pd.Series([1, 10**400, -(10**400)], dtype=object)})

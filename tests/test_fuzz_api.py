@@ -15,15 +15,15 @@ from typing import Any
 
 import pytest
 import schemathesis
+from causeline.service.api.app import create_app
+from causeline.service.api.settings import Settings
+from causeline.service.bundle.load import Bundle
 from fastapi import FastAPI
 from hypothesis import HealthCheck, given, settings
 from hypothesis.errors import Unsatisfiable
 from schemathesis import GenerationMode
 from schemathesis.specs.openapi.checks import positive_data_acceptance
 
-from service.api import create_app
-from service.bundle import Bundle
-from service.settings import Settings
 from tests.test_api import KEY
 
 PROBLEM = "application/problem+json"

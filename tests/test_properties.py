@@ -17,14 +17,13 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pytest
+from causeline.service.bundle.load import load_bundle
+from causeline.service.explain.explainer import Explainer
+from causeline.service.explain.records import explanation_records
+from causeline.training.config import TrainConfig
+from causeline.training.pipeline import fit_bundle, write_bundle
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-
-from service.bundle import load_bundle
-from service.explain import Explainer
-from service.report import explanation_records
-from training.config import TrainConfig
-from training.pipeline import fit_bundle, write_bundle
 
 ROWS = 400
 

@@ -6,13 +6,13 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 import yaml
+from causeline.service.explain.explainer import Explainer
+from causeline.service.rootcause.grouping import UNGROUPED, GroupFinder, cause_mix
+from causeline.service.rootcause.run import RootCauseOptions, RootCauseResult, run_rootcause
 from sklearn.cluster import HDBSCAN as SklearnHDBSCAN
 from sklearn.metrics import adjusted_rand_score
 
 from fixtures.demo.generate import expected_events
-from service.explain import Explainer
-from service.rootcause import UNGROUPED, GroupFinder, cause_mix
-from service.rootcause_run import RootCauseOptions, RootCauseResult, run_rootcause
 from tests.conftest import AI4I_CSV, DEMO_CAUSE_CODES, DEMO_CONFIG
 
 AI4I_MODES = ["TWF", "HDF", "PWF", "OSF"]

@@ -8,15 +8,15 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from causeline.service.errors import DataError
+from causeline.service.explain.explainer import Explainer
+from causeline.service.files.predlog import PredictionLogWriter
+from causeline.service.rootcause import report as htmlreport
+from causeline.service.rootcause.run import EVENT_GROUPS, GROUPS, RootCauseOptions, run_rootcause
+from causeline.service.rootcause.tracking import PastGroup, PreviousRun, track
 
 from causeline.cli import main
 from fixtures.demo.generate import FAULTY_FIRMWARE
-from service import htmlreport
-from service.errors import DataError
-from service.explain import Explainer
-from service.predlog import PredictionLogWriter
-from service.rootcause_run import EVENT_GROUPS, GROUPS, RootCauseOptions, run_rootcause
-from service.tracking import PastGroup, PreviousRun, track
 
 MARCH = RootCauseOptions(since="2025-03-01", until="2025-04-01")
 

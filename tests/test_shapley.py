@@ -18,10 +18,9 @@ import lightgbm as lgb
 import numpy as np
 import pytest
 import shap
-
-from service.explain import Explainer
-from service.model import raw_score
-from service.treeshap import contributions
+from causeline.service.explain.explainer import Explainer
+from causeline.service.explain.score import raw_score
+from causeline.service.explain.treeshap import contributions
 
 SEEDS = [0, 1, 2]
 

@@ -9,12 +9,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from hypothesis import HealthCheck, given, settings
-from hypothesis import strategies as st
-
-from service.errors import ConfigError, DataError
-from service.spec import DatasetSpec, TimelineSpec, validate_model
-from service.timeline import (
+from causeline.service.errors import ConfigError, DataError
+from causeline.service.features.snapshots import (
     STATUS,
     TimelineInputs,
     build_snapshots,
@@ -22,6 +18,9 @@ from service.timeline import (
     entity_features,
     labelled_table,
 )
+from causeline.service.spec.dataset import DatasetSpec, TimelineSpec, validate_model
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 
 def cycle_spec(**extra: object) -> TimelineSpec:

@@ -10,13 +10,13 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from causeline.service.features.snapshots import TimelineInputs
+from causeline.training.build import build_table
+from causeline.training.config import load_config
 
 from causeline.cli import main as causeline
 from fixtures.demo.generate import generate
 from fixtures.demo.timeline import from_frame
-from service.timeline import TimelineInputs
-from training.build import build_table
-from training.config import load_config
 
 CONFIG = Path(__file__).resolve().parent.parent / "fixtures" / "demo" / "timeline.yaml"
 

@@ -11,9 +11,9 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
+from causeline.service.bundle.load import CHECKSUMS, MANIFEST, MODEL, load_bundle
+from causeline.service.errors import BundleError
 
-from service.bundle import CHECKSUMS, MANIFEST, MODEL, load_bundle
-from service.errors import BundleError
 from tests.conftest import AI4I_CONFIG, AI4I_CSV
 
 

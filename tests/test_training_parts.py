@@ -5,15 +5,14 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from causeline.service.errors import ConfigError, DataError
+from causeline.service.explain.score import calibrate
+from causeline.service.spec.dataset import DatasetSpec, validate_model
+from causeline.training.config import SplitSettings, ThresholdSettings
+from causeline.training.fit import choose_threshold, fit_calibration
+from causeline.training.split import split_rows
 from sklearn.isotonic import IsotonicRegression
 from sklearn.linear_model import LogisticRegression
-
-from service.errors import ConfigError, DataError
-from service.model import calibrate
-from service.spec import DatasetSpec, validate_model
-from training.config import SplitSettings, ThresholdSettings
-from training.fit import choose_threshold, fit_calibration
-from training.split import split_rows
 
 
 def _times(n: int, seed: int = 0) -> pd.Series:

@@ -10,11 +10,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import pandas as pd
-
-from service.errors import ConfigError
-from service.spec import TimelineSpec
-from service.tables import write_table
-from service.timeline import (
+from causeline.service.errors import ConfigError
+from causeline.service.features.snapshots import (
     RawPaths,
     TimelineInputs,
     build_snapshots,
@@ -22,7 +19,9 @@ from service.timeline import (
     labelled_table,
     read_inputs,
 )
-from training.config import TrainConfig, load_config
+from causeline.service.files.tables import write_table
+from causeline.service.spec.dataset import TimelineSpec
+from causeline.training.config import TrainConfig, load_config
 
 
 @dataclass(frozen=True)

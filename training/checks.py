@@ -4,12 +4,11 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-
-from service.bundle import FeatureStats
-from service.errors import DataError
-from service.features import FeatureBuilder, FeatureMatrix
-from service.tables import binary_column
-from training.config import TrainConfig
+from causeline.service.bundle.load import FeatureStats
+from causeline.service.errors import DataError
+from causeline.service.features.builder import FeatureBuilder, FeatureMatrix
+from causeline.service.files.tables import binary_column
+from causeline.training.config import TrainConfig
 
 
 def check_columns(table: pd.DataFrame, config: TrainConfig, builder: FeatureBuilder) -> None:

@@ -10,10 +10,9 @@ from pathlib import Path
 from typing import Literal
 
 import yaml
+from causeline.service.errors import ConfigError
+from causeline.service.spec.dataset import DatasetSpec, ExplainSettings, Strict, validate_model
 from pydantic import Field, model_validator
-
-from service.errors import ConfigError
-from service.spec import DatasetSpec, ExplainSettings, Strict, validate_model
 
 # LightGBM parameters a config may set; the rest are fixed so runs stay comparable.
 LIGHTGBM_KEYS = frozenset(

@@ -6,11 +6,10 @@ from dataclasses import dataclass
 
 import lightgbm as lgb
 import numpy as np
+from causeline.service.bundle.load import Calibration, Decision
+from causeline.training.config import ThresholdSettings, TrainingSettings
 from sklearn.isotonic import IsotonicRegression
 from sklearn.linear_model import LogisticRegression
-
-from service.bundle import Calibration, Decision
-from training.config import ThresholdSettings, TrainingSettings
 
 BASE_PARAMETERS: dict[str, object] = {
     "objective": "binary",

@@ -15,8 +15,7 @@ from pathlib import Path
 import lightgbm as lgb
 import numpy as np
 import pandas as pd
-
-from service.bundle import (
+from causeline.service.bundle.load import (
     CARD,
     CHECKSUMS,
     MANIFEST,
@@ -28,16 +27,16 @@ from service.bundle import (
     load_bundle,
     sha256_file,
 )
-from service.errors import DataError
-from service.fastshap import FastTreeExplainer
-from service.features import FeatureBuilder
-from service.model import calibrate
-from service.storage import atomic_directory
-from service.tables import read_table
-from service.treeshap import contributions
-from training.build import RawPaths, build_table, read_inputs
-from training.card import model_card
-from training.checks import (
+from causeline.service.errors import DataError
+from causeline.service.explain.fastshap import FastTreeExplainer
+from causeline.service.explain.score import calibrate
+from causeline.service.explain.treeshap import contributions
+from causeline.service.features.builder import FeatureBuilder
+from causeline.service.files.storage import atomic_directory
+from causeline.service.files.tables import read_table
+from causeline.training.build import RawPaths, build_table, read_inputs
+from causeline.training.card import model_card
+from causeline.training.checks import (
     check_columns,
     check_events,
     check_features,
@@ -46,10 +45,10 @@ from training.checks import (
     learn_categories,
     parse_times,
 )
-from training.config import TrainConfig, load_config
-from training.evaluate import held_out_metrics
-from training.fit import choose_threshold, fit_calibration, fit_trees
-from training.split import split_rows
+from causeline.training.config import TrainConfig, load_config
+from causeline.training.evaluate import held_out_metrics
+from causeline.training.fit import choose_threshold, fit_calibration, fit_trees
+from causeline.training.split import split_rows
 
 LIBRARIES = ("causeline", "lightgbm", "numpy", "pandas", "scikit-learn", "shap")
 

@@ -10,9 +10,8 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-
-from service.errors import DataError
-from training.config import SplitSettings
+from causeline.service.errors import DataError
+from causeline.training.config import SplitSettings
 
 
 @dataclass(frozen=True)

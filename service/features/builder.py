@@ -1,0 +1,238 @@
+"""From an input table to the model's feature matrix.
+
+Training and scoring both go through :class:`FeatureBuilder`, so a feature is computed the same way
+everywhere. Problems with individual rows (a word where a number belongs, an unknown category,
+infinity) are collected per row rather than raised, so that callers decide: training refuses the
+table, batch jobs report the rows, the HTTP layer answers 422.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from causeline.service.errors import DataError, quoted
+from causeline.service.files.tables import to_numbers
+from causeline.service.spec.dataset import FeatureSpec
+from causeline.service.spec.expressions import parse_expression
+
+
+@dataclass(frozen=True)
+class RowProblem:
+    """Something wrong with one cell: ``row`` is the position in the input table."""
+
+    row: int
+    column: str
+    message: str
+
+
+@dataclass(frozen=True)
+class FeatureMatrix:
+    """Model-ready values (float64, categories as integer codes, NaN for missing)."""
+
+    values: np.ndarray
+    names: list[str]
+    problems: list[RowProblem]
+
+    def bad_rows(self) -> np.ndarray:
+        """Positions of rows with at least one problem."""
+        return np.unique(np.array([p.row for p in self.problems], dtype=np.int64))
+
+
+class FeatureBuilder:
+    """Turns raw columns into features for a fixed list of feature specs.
+
+    ``categories`` gives, per categorical feature, the ordered category list whose positions are
+    the integer codes the model was trained on.
+    """
+
+    def __init__(
+        self,
+        features: Sequence[FeatureSpec],
+        categories: Mapping[str, Sequence[str]] | None = None,
+    ) -> None:
+        self.features = list(features)
+        self.categories = {name: list(values) for name, values in (categories or {}).items()}
+        self._expressions = {
+            f.name: parse_expression(f.expr) for f in self.features if f.expr is not None
+        }
+        for feature in self.features:
+            if feature.kind == "categorical" and feature.name not in self.categories:
+                if feature.categories is None:
+                    raise DataError(f"feature {feature.name!r}: no category list is known")
+                self.categories[feature.name] = list(feature.categories)
+        self._numeric_positions = [
+            i for i, f in enumerate(self.features) if not f.derived and f.kind == "numeric"
+        ]
+        self._categorical_positions = [
+            i for i, f in enumerate(self.features) if not f.derived and f.kind == "categorical"
+        ]
+        self._raw_positions = [i for i, f in enumerate(self.features) if not f.derived]
+        self._derived_positions = [i for i, f in enumerate(self.features) if f.derived]
+        self._names = [f.name for f in self.features]
+        self._sources = [f.name if f.derived else f.source_column for f in self.features]
+        self._required_positions = [i for i, f in enumerate(self.features) if not f.allow_missing]
+        self._codes = {
+            name: {value: code for code, value in enumerate(values)}
+            for name, values in self.categories.items()
+        }
+        self._required_columns = self._list_required_columns()
+
+    @property
+    def names(self) -> list[str]:
+        return list(self._names)
+
+    @property
+    def required_columns(self) -> list[str]:
+        """Raw columns an input must hold, in a stable order."""
+        return list(self._required_columns)
+
+    def _list_required_columns(self) -> list[str]:
+        raw = {f.name: f.source_column for f in self.features if not f.derived}
+        needed: list[str] = []
+        for feature in self.features:
+            if feature.derived:
+                for name in sorted(self._expressions[feature.name].names):
+                    needed.append(raw.get(name, name))
+            else:
+                needed.append(feature.source_column)
+        return list(dict.fromkeys(needed))
+
+    def transform(self, table: Table) -> FeatureMatrix:
+        """Build the feature matrix; raises :class:`DataError` only for missing columns.
+
+        ``table`` is a DataFrame, or a mapping of column name to equal-length arrays (the HTTP
+        layer's cheaper form for a few events).
+        """
+        missing = [column for column in self._required_columns if column not in table]
+        if missing:
+            raise DataError(f"missing column {missing[0]!r}" + _more(missing))
+        rows = table_rows(table)
+        problems: list[RowProblem] = []
+        out = np.empty((rows, len(self.features)), dtype=np.float64)
+        numeric = self._numeric_positions
+        columns = [column_values(table, self._sources[p]) for p in numeric]
+        if all(column.dtype.kind in "biuf" for column in columns):
+            # Numbers need no parsing: one copy for them all keeps single events cheap.
+            out[:, numeric] = np.array(columns, dtype=np.float64).T
+        else:
+            for position, column in zip(numeric, columns, strict=True):
+                out[:, position] = _to_float(self._names[position], column, problems)
+        for position in self._categorical_positions:
+            column = column_values(table, self._sources[position], text=True)
+            out[:, position] = self._encode(self.features[position], column, problems)
+        # One pass over every raw number: infinity is a problem, scored as missing.
+        infinite = np.isinf(out[:, numeric])
+        if infinite.any():
+            for row, column in zip(*np.nonzero(infinite), strict=True):
+                name = self._names[numeric[column]]
+                problems.append(RowProblem(int(row), name, "value is infinite"))
+            block = out[:, numeric]
+            block[infinite] = np.nan
+            out[:, numeric] = block
+        if self._derived_positions:
+            raw_values = {self._names[p]: out[:, p] for p in self._raw_positions}
+            view = _ColumnView(raw_values, table, problems)
+            for position in self._derived_positions:
+                feature = self.features[position]
+                values = self._expressions[feature.name].evaluate(view)
+                values = np.broadcast_to(values, (rows,)).astype(np.float64)
+                # A derived value that cannot be computed (say, a division by zero) is missing.
+                values[~np.isfinite(values)] = np.nan
+                out[:, position] = values
+        required = self._required_positions
+        missing = np.isnan(out[:, required])
+        if missing.any():
+            # Column by column, so problems come in feature order as the schema lists them.
+            for column, row in zip(*np.nonzero(missing.T), strict=True):
+                problems.append(RowProblem(int(row), self._names[required[column]],
+                                           "value is missing"))
+        return FeatureMatrix(out, self.names, problems)
+
+    def _encode(
+        self, feature: FeatureSpec, values: np.ndarray, problems: list[RowProblem]
+    ) -> np.ndarray:
+        lookup = self._codes[feature.name]
+        codes: list[float] = []
+        for row, value in enumerate(values):
+            if value is None or value is pd.NA or (isinstance(value, float) and value != value):
+                codes.append(np.nan)
+                continue
+            # str() matches how training reads category lists (pandas' string conversion).
+            text = str(value).strip()
+            code = lookup.get(text)
+            if code is None:
+                problems.append(RowProblem(row, feature.name, f"unknown category {quoted(text)}"))
+                codes.append(np.nan)
+            else:
+                codes.append(code)
+        return np.array(codes, dtype=np.float64)
+
+
+Table = pd.DataFrame | Mapping[str, np.ndarray]
+
+
+def table_rows(table: Table) -> int:
+    if isinstance(table, pd.DataFrame):
+        return len(table)
+    return len(next(iter(table.values()))) if table else 0
+
+
+def column_values(table: Table, name: str, text: bool = False) -> np.ndarray:
+    """One column as a NumPy array: float64 for numbers, objects (None for missing) otherwise.
+
+    ``text`` keeps the values as they are (a category ``3`` stays ``3``, not ``3.0``).
+    """
+    column = table[name]
+    if not isinstance(column, pd.Series):
+        return np.asarray(column)
+    if text:
+        return column.to_numpy(dtype=object, na_value=None)
+    if column.dtype.kind in "biuf":
+        return column.to_numpy(dtype=np.float64)
+    if pd.api.types.is_numeric_dtype(column.dtype) or pd.api.types.is_bool_dtype(column.dtype):
+        return column.to_numpy(dtype=np.float64, na_value=np.nan)
+    return column.to_numpy(dtype=object, na_value=None)
+
+
+class _ColumnView(Mapping[str, np.ndarray]):
+    """Names an expression may read: raw features, else raw columns converted to numbers."""
+
+    def __init__(
+        self, features: dict[str, np.ndarray], table: Table, problems: list[RowProblem]
+    ) -> None:
+        self._features = features
+        self._table = table
+        self._problems = problems
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        if name not in self._features:
+            column = column_values(self._table, name)
+            self._features[name] = _to_float(name, column, self._problems)
+        return self._features[name]
+
+    def __iter__(self):  # type: ignore[no-untyped-def]
+        return iter(self._features)
+
+    def __len__(self) -> int:
+        return len(self._features)
+
+
+def _to_float(name: str, values: np.ndarray, problems: list[RowProblem]) -> np.ndarray:
+    # Numbers need no parsing; this fast path keeps single-event scoring cheap.
+    if values.dtype.kind in "biuf":
+        return values.astype(np.float64, copy=True)
+    converted = to_numbers(pd.Series(values, dtype=object))
+    out = converted.to_numpy(dtype=np.float64, na_value=np.nan, copy=True)
+    for row in np.flatnonzero(~pd.isna(values) & np.isnan(out)):
+        text = str(values[row])
+        if text.strip().lower() in {"nan", ""}:
+            continue
+        problems.append(RowProblem(int(row), name, f"not a number: {text[:40]!r}"))
+    return out
+
+
+def _more(items: list[str]) -> str:
+    return f" (and {len(items) - 1} more: {', '.join(items[1:4])})" if len(items) > 1 else ""

@@ -1,0 +1,426 @@
+"""The root-cause batch job end to end: events in, groups.csv / event_groups.csv / report out.
+
+Everything lands in one folder written atomically: a run that fails half-way leaves the previous
+run's folder exactly as it was.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterator
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any, Protocol
+
+import numpy as np
+import pandas as pd
+from causeline.service.bundle.load import Bundle
+from causeline.service.errors import DataError
+from causeline.service.explain.explainer import Explainer
+from causeline.service.explain.reasons import ReasonCatalogue
+from causeline.service.files.predlog import is_prediction_log
+from causeline.service.files.rejects import (
+    write_rejects,
+)
+from causeline.service.files.spreadsheet import escape_frame
+from causeline.service.files.storage import atomic_directory
+from causeline.service.files.tables import write_table
+from causeline.service.rootcause import report as htmlreport
+from causeline.service.rootcause.fix import Target, fix_targets
+from causeline.service.rootcause.grouping import (
+    LEADING_SHARE,
+    UNGROUPED,
+    GroupFinder,
+    cause_mix,
+    find_groups,
+)
+from causeline.service.rootcause.intake import (
+    event_times,
+    parse_time,
+    read_events,
+    screen_rows,
+    window_mask,
+)
+from causeline.service.rootcause.tally import (
+    SEED,
+    EventSlice,
+    Tally,
+    avoidable_in_slice,
+    event_frame,
+    group_row,
+    tally_slice,
+    weekly_frame,
+)
+from causeline.service.rootcause.tracking import (
+    ABSOLUTE_TOLERANCE,
+    MATCH_SIMILARITY,
+    RELATIVE_TOLERANCE,
+    SUMMARY,
+    PreviousRun,
+    read_previous,
+    summary_groups,
+    track,
+)
+
+GROUPS = "groups.csv"
+EVENT_GROUPS = "event_groups.csv"
+REPORT = "report.html"
+REJECTS = "rejects.csv"
+CAUTION = (
+    "Model estimates, not a diagnosis. Groups, reason codes and events avoidable come from a "
+    "statistical model of past data; they show associations and may be wrong. Where food or "
+    "equipment safety is at stake, follow the codes and rules that apply locally and have a "
+    "licensed technician inspect the equipment before acting."
+)
+STEPS = 6
+
+
+@dataclass(frozen=True)
+class RootCauseOptions:
+    predicted: bool = False
+    since: str | None = None
+    until: str | None = None
+    previous: Path | None = None
+    min_group_size: int | None = None
+
+
+@dataclass(frozen=True)
+class JobStart:
+    """Options checked before any work: the window and the previous run's groups."""
+
+    since: pd.Timestamp | None
+    until: pd.Timestamp | None
+    previous: PreviousRun | None
+
+
+@dataclass(frozen=True)
+class SelectedEvents:
+    """What every engine hands to :func:`finish_rootcause` besides the groups: counts, the
+    rejected rows and the feature rows co-driver shifts of the fix simulation are fitted on
+    (:mod:`service.rootcause_fix`). ``repeats_dropped``: earlier prediction-log entries of
+    event ids logged again (:func:`service.rootcause_input.latest_entries`)."""
+
+    reference: np.ndarray
+    rejects: pd.DataFrame
+    time_column: str | None
+    rows_read: int
+    rows_in_window: int
+    repeats_dropped: int = 0
+
+
+@dataclass(frozen=True)
+class Grouping:
+    """The HDBSCAN groups (``groups`` labels), how they were found and their combined tally."""
+
+    groups: int
+    parameters: dict[str, Any]
+    tally: Tally
+
+
+class Slices(Protocol):
+    """The steps that need every event again, done where the events are (one engine each)."""
+
+    def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
+        """Per group label, events its fix would avoid (a model estimate)."""
+        ...
+
+    def event_frames(self, group_ids: list[str]) -> Iterator[pd.DataFrame]:
+        """event_groups.csv rows, slice after slice in input order."""
+        ...
+
+
+class LocalSlices:
+    """The local engine's events: one slice, in memory."""
+
+    def __init__(self, bundle: Bundle, part: EventSlice, reference: np.ndarray) -> None:
+        self.bundle = bundle
+        self.part = part
+        self.reference = reference
+
+    def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
+        return avoidable_in_slice(self.bundle, self.part, targets, self.reference)
+
+    def event_frames(self, group_ids: list[str]) -> Iterator[pd.DataFrame]:
+        yield event_frame(self.part, group_ids, UNGROUPED)
+
+
+@dataclass(frozen=True)
+class RootCauseResult:
+    """The run's group table and summary; ``event_groups`` is read back from its CSV."""
+
+    groups: pd.DataFrame
+    summary: dict[str, Any]
+    folder: Path
+
+    @property
+    def event_groups(self) -> pd.DataFrame:
+        text = {"event_id": "string", "group_id": "string", "entity": "string"}
+        return pd.read_csv(self.folder / EVENT_GROUPS, dtype=text)
+
+
+def _quiet(message: str) -> None:
+    """The default progress sink: say nothing."""
+
+
+def run_rootcause(
+    bundle: Bundle,
+    events_path: Path,
+    out: Path,
+    options: RootCauseOptions | None = None,
+    progress=_quiet,  # type: ignore[no-untyped-def]
+) -> RootCauseResult:
+    """Group the selected events and write the outputs into ``out``."""
+    options = options or RootCauseOptions()
+    out = Path(out)
+    start = start_rootcause(out, options)
+    since, until = start.since, start.until
+
+    if is_prediction_log(events_path) and not options.predicted:
+        raise DataError(
+            f"{events_path}: a prediction log has no labels; pass --predicted to group rows "
+            "scored at or above the threshold"
+        )
+    progress(f"step 1/{STEPS}: reading {events_path}")
+    source = read_events(bundle, events_path)
+    if source.repeats_dropped:
+        progress(f"step 1/{STEPS}: {source.repeats_dropped:,} repeated log entries dropped "
+                 "(an event id logged more than once counts once, its latest entry)")
+    times = event_times(source)
+    window = window_mask(times, since, until, source.time_column)
+    table = source.table[window]
+    times = times.loc[table.index]
+
+    progress(f"step 2/{STEPS}: selecting events among {len(table):,} rows")
+    screened = screen_rows(
+        bundle, table, source.rows[window], source.rejects, options.predicted,
+        f"{events_path}: ",
+    )
+    rejects, reference, selected = screened.rejects, screened.reference, screened.selected
+    table, times = table[screened.keep], times[screened.keep]
+    events = table[selected].reset_index(drop=True)
+    times = times[selected].reset_index(drop=True)
+
+    progress(f"step 3/{STEPS}: explaining {len(events):,} events")
+    explainer = Explainer(bundle)
+    explanation = explainer.explain(events)
+    mix, has_cause = cause_mix(explanation.code_contributions)
+
+    progress(f"step 4/{STEPS}: clustering")
+    finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mix, has_cause)
+    part = EventSlice(
+        index=0, events=events, times=times, explanation=explanation,
+        keys=np.random.default_rng(SEED).random(len(events)), entity=bundle.spec.entity,
+        labels=finder.labels_, strength=finder.strength_,
+    )
+    groups = int(finder.labels_.max(initial=-1)) + 1
+    selection = SelectedEvents(
+        reference=reference, rejects=rejects, time_column=source.time_column,
+        rows_read=len(source.table) + source.repeats_dropped + len(source.rejects),
+        rows_in_window=len(table), repeats_dropped=source.repeats_dropped,
+    )
+    grouping = Grouping(groups, {
+        "engine": "local", "min_cluster_size": finder.min_cluster_size_,
+        "min_samples": finder.min_samples_,
+    }, tally_slice(part, groups, explainer.catalogue))
+    return finish_rootcause(bundle, events_path, out, options, start, selection, grouping,
+                            LocalSlices(bundle, part, reference), progress)
+
+
+def start_rootcause(out: Path, options: RootCauseOptions) -> JobStart:
+    """Check the options and the output folder before any work, so a bad flag fails at once."""
+    _check_out(Path(out))
+    if options.min_group_size is not None and options.min_group_size < 2:
+        raise DataError("--min-group-size must be at least 2")
+    return JobStart(
+        since=parse_time(options.since, "--since"),
+        until=parse_time(options.until, "--until"),
+        previous=read_previous(options.previous) if options.previous else None,
+    )
+
+
+def finish_rootcause(
+    bundle: Bundle,
+    events_path: Path,
+    out: Path,
+    options: RootCauseOptions,
+    start: JobStart,
+    selection: SelectedEvents,
+    grouping: Grouping,
+    slices: Slices,
+    progress=_quiet,  # type: ignore[no-untyped-def]
+) -> RootCauseResult:
+    """Describe, track and write the groups: the part every engine shares."""
+    tally, rejects = grouping.tally, selection.rejects
+    since, until = start.since, start.until
+    catalogue = ReasonCatalogue(bundle.spec, bundle.manifest.stats)
+    codes = catalogue.code_ids
+    threshold = bundle.manifest.decision.threshold
+    found = find_groups(tally.mix, tally.count, codes)
+    total = max(tally.events, 1)
+    shares = [g.size / total for g in found]
+    tracked = track([g.signature for g in found], shares, start.previous)
+
+    progress(f"step 5/{STEPS}: describing {len(found)} groups and simulating their fixes")
+    targets: list[list[Target]] = [[] for _ in range(grouping.groups)]
+    for group in found:
+        targets[group.label] = fix_targets(catalogue, group.leading)
+    avoidable = slices.avoidable(targets)
+    rows = []
+    for position, group in enumerate(found):
+        row = {
+            "group_id": tracked.ids[position],
+            "status": tracked.status[position],
+            "share": shares[position],
+            "previous_share": tracked.previous_share[position],
+        }
+        row.update(group_row(catalogue, group, tally, targets[group.label],
+                             float(avoidable[group.label])))
+        rows.append(row)
+    groups = _group_frame(rows, tally.events - tally.grouped, tally.events)
+    group_ids = [""] * grouping.groups
+    for position, group in enumerate(found):
+        group_ids[group.label] = tracked.ids[position]
+
+    summary = {
+        "created": datetime.now(UTC).isoformat(timespec="seconds"),
+        "bundle": {"name": bundle.name, "version": bundle.version},
+        "input": str(events_path),
+        "selection": "predicted" if options.predicted else "actual",
+        "threshold": threshold,
+        "window": {
+            "time_column": selection.time_column,
+            "since": since.isoformat() if since is not None else None,
+            "until": until.isoformat() if until is not None else None,
+            "first_event": _iso(tally.first_event),
+            "last_event": _iso(tally.last_event),
+        },
+        "counts": {
+            "rows_read": selection.rows_read,
+            "rejected": len(rejects),
+            "repeats_dropped": selection.repeats_dropped,
+            "rows_in_window": selection.rows_in_window,
+            "events": tally.events,
+            "grouped": tally.grouped,
+            "ungrouped": tally.events - tally.grouped,
+            "groups": len(found),
+            "events_with_warnings": tally.warned,
+        },
+        "parameters": {
+            **grouping.parameters,
+            "leading_share": LEADING_SHARE,
+            "match_similarity": MATCH_SIMILARITY,
+            "steady_tolerance": {"relative": RELATIVE_TOLERANCE, "absolute": ABSOLUTE_TOLERANCE},
+        },
+        "previous": str(options.previous) if options.previous else None,
+        "last_group_number": tracked.last_number,
+        "groups": summary_groups(
+            tracked.ids, shares, [g.size for g in found],
+            [r["label"] for r in rows], [g.signature for g in found],
+        ),
+        "gone": [
+            {"group_id": g.group_id, "label": g.label, "previous_share": g.share,
+             "previous_events": g.events}
+            for g in tracked.gone
+        ],
+        "caution": CAUTION,
+    }
+
+    progress(f"step 6/{STEPS}: writing {out}")
+    report = htmlreport.ReportData(
+        title=f"Root-cause groups: {bundle.name}",
+        summary=summary,
+        groups=groups,
+        heatmap=_heatmap(found, tracked.ids, codes),
+        weekly=weekly_frame(tally.weekly, group_ids, UNGROUPED),
+        examples=_examples(found, tracked.ids, tally),
+        caution=CAUTION,
+    )
+    with atomic_directory(out) as staging:
+        write_table(escape_frame(groups), staging / GROUPS)
+        _write_frames(slices.event_frames(group_ids), staging / EVENT_GROUPS)
+        htmlreport.write_report(report, staging / REPORT)
+        write_rejects(rejects, staging / REJECTS)
+        (staging / SUMMARY).write_text(
+            json.dumps(summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n", "utf-8"
+        )
+    return RootCauseResult(groups=groups, summary=summary, folder=out)
+
+
+def _write_frames(frames: Iterator[pd.DataFrame], path: Path) -> None:
+    """One CSV from consecutive frames (formula-like cells escaped), header once."""
+    with open(path, "w", encoding="utf-8", newline="") as handle:
+        first = True
+        for frame in frames:
+            escape_frame(frame).to_csv(handle, index=False, header=first)
+            first = False
+
+
+def _check_out(out: Path) -> None:
+    """Refuse to replace a folder that is not an earlier run's output (it would be deleted)."""
+    if not out.exists():
+        return
+    if not out.is_dir() or (any(out.iterdir()) and not (out / SUMMARY).is_file()):
+        raise DataError(
+            f"{out} exists and is not a root-cause output folder; refusing to replace it"
+        )
+
+
+def _group_frame(rows: list[dict[str, Any]], ungrouped: int, events: int) -> pd.DataFrame:
+    frame = pd.DataFrame(rows, columns=GROUP_COLUMNS)
+    frame = frame.sort_values("events", ascending=False, kind="stable")
+    tail = pd.DataFrame([{
+        "group_id": UNGROUPED,
+        "label": "ungrouped: no shared mix of causes",
+        "events": ungrouped,
+        "share": ungrouped / max(events, 1),
+        "drivers": "",
+        "fix_action": "",
+        "events_avoidable_model_estimate": None,
+    }], columns=GROUP_COLUMNS)
+    frame = tail if frame.empty else pd.concat([frame, tail], ignore_index=True)
+    for column in ("share", "previous_share"):
+        frame[column] = frame[column].astype(float).round(4)
+    for column in [c for c in GROUP_COLUMNS if c.endswith("_contribution")]:
+        frame[column] = frame[column].astype(float).round(3)
+    # A count of events, estimated: tenths are as far as it can be read.
+    frame["events_avoidable_model_estimate"] = (
+        frame["events_avoidable_model_estimate"].astype(float).round(1)
+    )
+    return frame.reset_index(drop=True)
+
+
+GROUP_COLUMNS = [
+    "group_id", "label", "status", "events", "share", "previous_share",
+    "code_1", "code_1_mean_contribution", "code_2", "code_2_mean_contribution",
+    "code_3", "code_3_mean_contribution",
+    "driver_values", "drivers", "fix_code", "fix_kind", "fix_action", "fix_simulated",
+    "events_avoidable_model_estimate", "first_event", "last_event", "top_entities",
+    "example_event_ids",
+]
+
+
+def _heatmap(found, ids, codes) -> pd.DataFrame:  # type: ignore[no-untyped-def]
+    """Groups x codes: each group's mean share of each code, codes used by any group only."""
+    frame = pd.DataFrame(
+        [[g.signature.get(c, 0.0) for c in codes] for g in found], index=ids, columns=codes
+    )
+    if frame.empty:
+        return frame
+    return frame.sort_index().loc[:, frame.max(axis=0) >= 0.02]
+
+
+def _examples(found, ids, tally) -> list[htmlreport.Example]:  # type: ignore[no-untyped-def]
+    """Each group's strongest member, shown in full."""
+    out = []
+    for group, group_id in sorted(zip(found, ids, strict=True), key=lambda pair: pair[1]):
+        best = tally.examples[group.label][0]
+        out.append(htmlreport.Example(
+            group_id=group_id, event_id=best.event_id, probability=best.probability,
+            reasons=best.reasons,
+        ))
+    return out
+
+
+def _iso(stamp: Any) -> str | None:
+    return None if stamp is None or pd.isna(stamp) else pd.Timestamp(stamp).isoformat()
