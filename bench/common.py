@@ -16,7 +16,6 @@ if str(ROOT) not in sys.path:
 def demo_bundle(folder: Path | None = None, cases: int = 320, days: int = 365) -> Path:
     """Generate the demo fleet and train a bundle on it; returns the bundle's folder."""
     from causeline.training.pipeline import train
-
     from fixtures.demo.generate import generate
 
     folder = Path(folder or tempfile.mkdtemp(prefix="causeline-bench-"))

@@ -17,6 +17,7 @@ from bench.common import demo_bundle, rate, report
 
 def main() -> None:
     import pandas as pd
+
     from causeline.service.bundle.load import load_bundle
     from causeline.service.explain.explainer import Explainer
     from causeline.service.explain.treeshap import contributions

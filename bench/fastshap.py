@@ -24,6 +24,7 @@ def main() -> None:
     import lightgbm as lgb
     import numpy as np
     import pandas as pd
+
     from causeline.service.bundle.load import load_bundle
     from causeline.service.explain.treeshap import contributions
     from causeline.training.fit import BASE_PARAMETERS

@@ -179,6 +179,7 @@ def _mean_batch(port: int) -> float:
 
 def _events(bundle: Path, rows: int = 200) -> list[dict[str, Any]]:
     import pandas as pd
+
     from causeline.service.bundle.load import load_bundle
 
     loaded = load_bundle(bundle)

@@ -8,13 +8,9 @@ from common import ROOT, rate, report
 
 
 def main() -> None:
-    from causeline.service.features.snapshots import (
-        TimelineInputs,
-        build_snapshots,
-        entity_features,
-    )
+    from causeline.service.features.logs import TimelineInputs
+    from causeline.service.features.snapshots import build_snapshots, entity_features
     from causeline.training.config import load_config
-
     from fixtures.demo.timeline import generate_timeline
 
     config = load_config(ROOT / "fixtures" / "demo" / "timeline.yaml")

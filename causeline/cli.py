@@ -113,7 +113,7 @@ def _has_raw_logs(args: argparse.Namespace) -> bool:
 
 
 def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
-    from causeline.service.features.snapshots import RawPaths
+    from causeline.service.features.logs import RawPaths
 
     if args.readings is None:
         raise CauselineError("give --readings (and --events, maybe --actions, --attributes)")
@@ -184,7 +184,8 @@ def _explain(args: argparse.Namespace) -> int:
         # The same build as `causeline build`, so scores match training's features exactly.
         import numpy as np
 
-        from causeline.service.features.snapshots import read_inputs, snapshot_features
+        from causeline.service.features.logs import read_inputs
+        from causeline.service.features.snapshots import snapshot_features
         from causeline.service.files.rejects import Lenient, empty_rejects
 
         inputs = read_inputs(bundle.spec, _raw_paths(args))

@@ -6,6 +6,7 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+
 from causeline.service.bundle.load import Bundle, load_bundle
 from causeline.training.pipeline import train
 

@@ -10,17 +10,12 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import pandas as pd
+
 from causeline.service.errors import ConfigError
-from causeline.service.features.snapshots import (
-    RawPaths,
-    TimelineInputs,
-    build_snapshots,
-    label_counts,
-    labelled_table,
-    read_inputs,
-)
+from causeline.service.features.logs import RawPaths, TimelineInputs, read_inputs
+from causeline.service.features.snapshots import build_snapshots, label_counts, labelled_table
 from causeline.service.files.tables import write_table
-from causeline.service.spec.dataset import TimelineSpec
+from causeline.service.spec.timeline import TimelineSpec
 from causeline.training.config import TrainConfig, load_config
 
 

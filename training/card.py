@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from causeline.service.bundle.load import Manifest
+from causeline.service.bundle.manifest import Manifest
 
 
 def _number(value: object, digits: int = 3) -> str:

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from causeline.service.bundle.load import FeatureStats
+
+from causeline.service.bundle.manifest import FeatureStats
 from causeline.service.errors import DataError
 from causeline.service.features.builder import FeatureBuilder, FeatureMatrix
 from causeline.service.files.tables import binary_column

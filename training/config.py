@@ -10,9 +10,11 @@ from pathlib import Path
 from typing import Literal
 
 import yaml
-from causeline.service.errors import ConfigError
-from causeline.service.spec.dataset import DatasetSpec, ExplainSettings, Strict, validate_model
 from pydantic import Field, model_validator
+
+from causeline.service.errors import ConfigError
+from causeline.service.spec.base import Strict, validate_model
+from causeline.service.spec.dataset import DatasetSpec, ExplainSettings
 
 # LightGBM parameters a config may set; the rest are fixed so runs stay comparable.
 LIGHTGBM_KEYS = frozenset(

@@ -6,10 +6,11 @@ from dataclasses import dataclass
 
 import lightgbm as lgb
 import numpy as np
-from causeline.service.bundle.load import Calibration, Decision
-from causeline.training.config import ThresholdSettings, TrainingSettings
 from sklearn.isotonic import IsotonicRegression
 from sklearn.linear_model import LogisticRegression
+
+from causeline.service.bundle.manifest import Calibration, Decision
+from causeline.training.config import ThresholdSettings, TrainingSettings
 
 BASE_PARAMETERS: dict[str, object] = {
     "objective": "binary",

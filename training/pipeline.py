@@ -15,7 +15,9 @@ from pathlib import Path
 import lightgbm as lgb
 import numpy as np
 import pandas as pd
-from causeline.service.bundle.load import (
+
+from causeline.service.bundle.load import load_bundle
+from causeline.service.bundle.manifest import (
     CARD,
     CHECKSUMS,
     MANIFEST,
@@ -23,15 +25,13 @@ from causeline.service.bundle.load import (
     SCHEMA_VERSION,
     ExplainerInfo,
     Manifest,
-    checksum_text,
-    load_bundle,
-    sha256_file,
 )
 from causeline.service.errors import DataError
 from causeline.service.explain.fastshap import FastTreeExplainer
 from causeline.service.explain.score import calibrate
 from causeline.service.explain.treeshap import contributions
 from causeline.service.features.builder import FeatureBuilder
+from causeline.service.files.checksum import checksum_text, sha256_file
 from causeline.service.files.storage import atomic_directory
 from causeline.service.files.tables import read_table
 from causeline.training.build import RawPaths, build_table, read_inputs

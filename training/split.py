@@ -10,6 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
+
 from causeline.service.errors import DataError
 from causeline.training.config import SplitSettings
 

@@ -21,6 +21,11 @@ from collections.abc import AsyncIterator, Sequence
 from dataclasses import dataclass
 from typing import Annotated, Any
 
+from fastapi import Depends, FastAPI, Request, Security
+from fastapi.responses import JSONResponse, Response
+from fastapi.security import HTTPAuthorizationCredentials
+from starlette.concurrency import run_in_threadpool
+
 from causeline.service.api import problems
 from causeline.service.api.auth import ApiKeys, api_key_header, bearer, presented_keys
 from causeline.service.api.batcher import Batcher, Job, Scored, log_records
@@ -53,10 +58,6 @@ from causeline.service.api.schema import EventSchema
 from causeline.service.api.settings import Settings
 from causeline.service.api.timeline import online_event
 from causeline.service.errors import CauselineError, quoted
-from fastapi import Depends, FastAPI, Request, Security
-from fastapi.responses import JSONResponse, Response
-from fastapi.security import HTTPAuthorizationCredentials
-from starlette.concurrency import run_in_threadpool
 
 logger = logging.getLogger("causeline.service")
 

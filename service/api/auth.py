@@ -11,10 +11,11 @@ from __future__ import annotations
 import hmac
 from pathlib import Path
 
-from causeline.service.api.problems import Problem
-from causeline.service.errors import ConfigError
 from fastapi import Request
 from fastapi.security import APIKeyHeader, HTTPBearer
+
+from causeline.service.api.problems import Problem
+from causeline.service.errors import ConfigError
 
 bearer = HTTPBearer(auto_error=False, description="an API key as a bearer token")
 api_key_header = APIKeyHeader(name="X-API-Key", auto_error=False, description="an API key")

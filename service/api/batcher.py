@@ -16,11 +16,12 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
+from starlette.concurrency import run_in_threadpool
+
 from causeline.service.api.problems import FieldError
 from causeline.service.api.registry import Model
 from causeline.service.api.schema import EventSchema, event_id
 from causeline.service.explain.records import explanation_records
-from starlette.concurrency import run_in_threadpool
 
 INLINE_ROWS = 64
 

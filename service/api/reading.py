@@ -13,12 +13,13 @@ from __future__ import annotations
 
 from typing import Any, TypeVar
 
-from causeline.service.api import jsonio as api_json
-from causeline.service.api.problems import FieldError, Problem
 from fastapi import Request
 from fastapi.exceptions import RequestValidationError
 from pydantic import BaseModel, ValidationError
 from starlette.requests import ClientDisconnect
+
+from causeline.service.api import jsonio as api_json
+from causeline.service.api.problems import FieldError, Problem
 
 Model = TypeVar("Model", bound=BaseModel)
 

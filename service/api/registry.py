@@ -14,7 +14,8 @@ from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 
-from causeline.service.bundle.load import CHECKSUMS, Bundle, load_bundle
+from causeline.service.bundle.load import Bundle, load_bundle
+from causeline.service.bundle.manifest import CHECKSUMS
 from causeline.service.errors import BundleError
 from causeline.service.explain.explainer import Explainer
 

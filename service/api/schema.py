@@ -12,9 +12,10 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
+
 from causeline.service.api.problems import FieldError
 from causeline.service.bundle.load import Bundle
-from causeline.service.features.builder import RowProblem
+from causeline.service.errors import RowProblem
 from causeline.service.files.tables import LARGEST
 
 _ABSENT = object()

@@ -31,6 +31,7 @@ def log_config(level: str) -> dict[str, object]:
 def run(settings: Settings) -> None:
     """Check the bundles, then serve until interrupted."""
     import uvicorn
+
     from causeline.service.api.auth import ApiKeys
     from causeline.service.api.registry import load_models
 

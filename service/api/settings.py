@@ -10,9 +10,10 @@ import os
 from collections.abc import Mapping
 from pathlib import Path
 
-from causeline.service.errors import ConfigError
-from causeline.service.spec.dataset import Strict
 from pydantic import Field, ValidationError
+
+from causeline.service.errors import ConfigError
+from causeline.service.spec.base import Strict
 
 PREFIX = "CAUSELINE_"
 _OFF = {"", "0", "false", "no", "off"}

@@ -10,13 +10,15 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+
 from causeline.service.api.bodies import TimelineScoreRequest
 from causeline.service.api.problems import FieldError, Problem
 from causeline.service.api.schema import json_type, number_error
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import CauselineError, first_line, quoted
-from causeline.service.features.snapshots import LogValueError, TimelineInputs, entity_features
-from causeline.service.spec.dataset import TimelineSpec
+from causeline.service.features.logs import LogValueError, TimelineInputs
+from causeline.service.features.snapshots import entity_features
+from causeline.service.spec.timeline import TimelineSpec
 
 
 def online_event(

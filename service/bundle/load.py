@@ -1,4 +1,4 @@
-"""A trained bundle: a folder of data that describes itself and can be verified.
+"""Loading a trained bundle: a folder of data that describes itself and can be verified.
 
 Layout (all files listed with their sha256 in ``checksums.sha256``)::
 
@@ -6,91 +6,28 @@ Layout (all files listed with their sha256 in ``checksums.sha256``)::
     model.txt         LightGBM's own text model
     MODEL_CARD.md     the model card, for people
 
-Loading parses JSON and LightGBM's text format only; nothing in a bundle can run code.
+Loading verifies every checksum first, then parses JSON and LightGBM's text format only;
+nothing in a bundle can run code.
 """
 
 from __future__ import annotations
 
 import contextlib
-import hashlib
 import json
 import re
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Literal
 
 import lightgbm as lgb
+
+from causeline.service.bundle.manifest import CHECKSUMS, MANIFEST, MODEL, SCHEMA_VERSION, Manifest
 from causeline.service.errors import BundleError, ConfigError
 from causeline.service.features.builder import FeatureBuilder
-from causeline.service.spec.dataset import DatasetSpec, ExplainSettings, Strict, validate_model
+from causeline.service.files.checksum import sha256_file
+from causeline.service.spec.base import validate_model
+from causeline.service.spec.dataset import DatasetSpec
 
-SCHEMA_VERSION = 1
-MANIFEST = "manifest.json"
-MODEL = "model.txt"
-CARD = "MODEL_CARD.md"
-CHECKSUMS = "checksums.sha256"
 _CHECKSUM_LINE = re.compile(r"^([0-9a-f]{64})  ([A-Za-z0-9_.-]+)$")
-
-
-class FeatureStats(Strict):
-    """What training saw of one feature: its range, typical value and categories."""
-
-    minimum: float | None = None
-    maximum: float | None = None
-    typical: float | str | None = None
-    missing_share: float = 0.0
-    categories: tuple[str, ...] | None = None
-
-
-class Calibration(Strict):
-    """Maps the model's raw score (log-odds) to a calibrated probability."""
-
-    method: Literal["sigmoid", "isotonic"]
-    slope: float | None = None
-    intercept: float | None = None
-    knots_x: tuple[float, ...] | None = None
-    knots_y: tuple[float, ...] | None = None
-
-
-class Decision(Strict):
-    """The probability at or above which an event is predicted, and the rule that chose it."""
-
-    threshold: float
-    rule: str
-
-
-class ExplainerInfo(Strict):
-    """How contributions are computed; they are in log-odds of the uncalibrated model."""
-
-    method: str
-    output: Literal["log-odds"] = "log-odds"
-    base_value: float
-
-
-class Manifest(Strict):
-    """Everything needed to score and explain, besides the trees themselves."""
-
-    schema_version: int
-    name: str
-    version: str
-    created: str
-    dataset: DatasetSpec
-    stats: dict[str, FeatureStats]
-    explain: ExplainSettings
-    calibration: Calibration
-    decision: Decision
-    explainer: ExplainerInfo
-    metrics: dict[str, Any]
-    training: dict[str, Any]
-    data_fingerprint: str
-    libraries: dict[str, str]
-
-    def categories(self) -> dict[str, tuple[str, ...]]:
-        return {
-            name: stats.categories
-            for name, stats in self.stats.items()
-            if stats.categories is not None
-        }
 
 
 @dataclass(frozen=True)
@@ -113,19 +50,6 @@ class Bundle:
     @property
     def spec(self) -> DatasetSpec:
         return self.manifest.dataset
-
-
-def sha256_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
-
-
-def checksum_text(folder: Path, names: list[str]) -> str:
-    """The checksum file's contents for ``names`` inside ``folder`` (sha256sum's format)."""
-    return "".join(f"{sha256_file(folder / name)}  {name}\n" for name in sorted(names))
 
 
 def verify(path: Path) -> None:

@@ -36,6 +36,9 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
+from dask.bytes import read_bytes
+from distributed import Client, LocalCluster
+
 from causeline.service.bundle.load import Bundle, load_bundle
 from causeline.service.errors import CauselineError, DataError, first_line
 from causeline.service.explain.explainer import Explainer
@@ -50,8 +53,6 @@ from causeline.service.files.rejects import (
 from causeline.service.files.spreadsheet import escape_frame
 from causeline.service.files.storage import atomic_file
 from causeline.service.files.tables import as_text, table_format
-from dask.bytes import read_bytes
-from distributed import Client, LocalCluster
 
 # A LocalCluster sized for a small machine: two single-threaded worker processes (LightGBM and
 # numba are not re-entrant-friendly with many threads per process, and processes sidestep the

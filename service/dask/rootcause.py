@@ -35,6 +35,7 @@ import dask
 import hdbscan
 import numpy as np
 import pandas as pd
+
 from causeline.service.bundle.load import Bundle
 from causeline.service.dask.engine import (
     AHEAD,

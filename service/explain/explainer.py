@@ -11,14 +11,16 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from causeline.service.bundle.load import Bundle, FeatureStats
+
+from causeline.service.bundle.load import Bundle
+from causeline.service.bundle.manifest import FeatureStats
+from causeline.service.errors import RowProblem
 from causeline.service.explain.fastshap import FastTreeExplainer
 from causeline.service.explain.reasons import Reason, ReasonCatalogue
 from causeline.service.explain.score import calibrate
 from causeline.service.explain.treeshap import Contributions
 from causeline.service.features.builder import (
     FeatureMatrix,
-    RowProblem,
     Table,
     column_values,
     table_rows,

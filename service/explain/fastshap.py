@@ -28,9 +28,10 @@ import warnings
 
 import lightgbm as lgb
 import numpy as np
+from numba import njit, prange, uint64
+
 from causeline.service.explain import treeshap
 from causeline.service.explain.treeparse import CATEGORICAL, Forest, parse_forest
-from numba import njit, prange, uint64
 
 ENGINE = "fast-treeshap-v2"
 # A leaf with d unique path features keeps 2^d float64 numbers (and builds them with a scratch

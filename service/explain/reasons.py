@@ -16,7 +16,8 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from causeline.service.bundle.load import FeatureStats
+
+from causeline.service.bundle.manifest import FeatureStats
 from causeline.service.spec.dataset import PLACEHOLDER, DatasetSpec, ReasonCode
 
 Value = float | str | None

@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 import pandas as pd
+
 from causeline.service.explain.explainer import Explanation
 
 

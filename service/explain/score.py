@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import numpy as np
-from causeline.service.bundle.load import Bundle, Calibration
+
+from causeline.service.bundle.load import Bundle
+from causeline.service.bundle.manifest import Calibration
 from causeline.service.explain.treeshap import SMALL_BATCH
 
 

@@ -13,19 +13,11 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from causeline.service.errors import DataError, quoted
+
+from causeline.service.errors import DataError, RowProblem, quoted
 from causeline.service.files.tables import to_numbers
 from causeline.service.spec.dataset import FeatureSpec
 from causeline.service.spec.expressions import parse_expression
-
-
-@dataclass(frozen=True)
-class RowProblem:
-    """Something wrong with one cell: ``row`` is the position in the input table."""
-
-    row: int
-    column: str
-    message: str
 
 
 @dataclass(frozen=True)

@@ -17,6 +17,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from causeline.service.features.windows import rank
 
 POSITIVE, NEGATIVE, CENSORED, DOWN = "positive", "negative", "censored", "down"

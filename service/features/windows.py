@@ -10,7 +10,8 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
-from causeline.service.spec.dataset import Aggregation
+
+from causeline.service.spec.timeline import Aggregation
 
 
 def rank(

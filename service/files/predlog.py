@@ -22,8 +22,9 @@ from pathlib import Path
 from typing import Any
 
 import pandas as pd
-from causeline.service.errors import DataError
 from pydantic_core import to_json
+
+from causeline.service.errors import DataError
 
 SEGMENT_GLOB = "segment-*.jsonl"
 META_COLUMNS = ("logged_at", "model", "version", "id", "probability", "decision", "reasons")

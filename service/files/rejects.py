@@ -24,8 +24,8 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from causeline.service.errors import DataError
-from causeline.service.features.builder import RowProblem
+
+from causeline.service.errors import DataError, RowProblem
 from causeline.service.files.spreadsheet import escape_frame
 from causeline.service.files.tables import (
     SUFFIXES,

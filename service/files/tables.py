@@ -10,6 +10,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+
 from causeline.service.errors import DataError, first_line
 from causeline.service.files.storage import atomic_file
 

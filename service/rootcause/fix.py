@@ -23,6 +23,7 @@ from typing import Literal
 
 import numpy as np
 import pandas as pd
+
 from causeline.service.bundle.load import Bundle
 from causeline.service.explain.reasons import ReasonCatalogue, format_value
 from causeline.service.explain.score import probability

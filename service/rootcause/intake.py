@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import DataError
 from causeline.service.explain.score import probability

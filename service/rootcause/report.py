@@ -14,6 +14,7 @@ from pathlib import Path
 from typing import Any
 
 import pandas as pd
+
 from causeline.service.files.storage import atomic_file
 
 # Our own palette: ink, paper, one accent for groups, a warm tone for cautions.

@@ -15,6 +15,7 @@ from typing import Any, Protocol
 
 import numpy as np
 import pandas as pd
+
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import DataError
 from causeline.service.explain.explainer import Explainer

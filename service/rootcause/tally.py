@@ -22,6 +22,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+
 from causeline.service.bundle.load import Bundle
 from causeline.service.explain.explainer import Explanation
 from causeline.service.explain.reasons import ReasonCatalogue, format_value

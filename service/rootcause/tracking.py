@@ -18,8 +18,9 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from causeline.service.errors import DataError
 from scipy.optimize import linear_sum_assignment
+
+from causeline.service.errors import DataError
 
 SUMMARY = "summary.json"
 # Our own choice: the same cause in two runs scores about 0.99, two different causes rarely

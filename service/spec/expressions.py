@@ -13,6 +13,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
+
 from causeline.service.errors import ConfigError
 
 MAX_LENGTH = 500

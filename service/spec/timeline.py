@@ -1,0 +1,223 @@
+"""The ``timeline:`` section: how raw readings, failures, actions and attributes become labelled
+snapshots (built by :mod:`causeline.service.features.snapshots`), and the feature names it makes.
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Literal
+
+from pydantic import Field, model_validator
+
+from causeline.service.spec.base import NAME_PATTERN, Strict
+
+Aggregation = Literal["last", "mean", "min", "max", "std", "slope", "count_above"]
+CalendarPart = Literal["month", "weekday", "hour"]
+# A span on a time clock: a number and a unit, e.g. 30m, 24h, 7d, 2w.
+DURATION = re.compile(r"^(\d+(?:\.\d+)?)([smhdw])$")
+UNIT_SECONDS = {"s": 1, "m": 60, "h": 3600, "d": 86_400, "w": 604_800}
+
+
+def span_amount(span: str | float, clock: str) -> float:
+    """A span in seconds (time clock) or cycles (cycle clock); ValueError if it does not fit."""
+    if clock == "cycle":
+        text = str(span).strip().lower().removesuffix("c")
+        try:
+            amount = float(text)
+        except ValueError:
+            raise ValueError(f"{span!r}: on a cycle clock a span is a number of cycles") from None
+    elif isinstance(span, int | float) and span == 0:
+        amount = 0.0
+    else:
+        match = DURATION.match(str(span).strip().lower())
+        if match is None:
+            raise ValueError(f"{span!r}: a span looks like 30m, 24h, 7d or 2w")
+        amount = float(match.group(1)) * UNIT_SECONDS[match.group(2)]
+    if amount < 0:
+        raise ValueError(f"{span!r}: a span cannot be negative")
+    return amount
+
+
+def span_tag(span: str | float, clock: str) -> str:
+    """The span as it appears in feature names: ``24h``, ``30c``, ``1p5h``."""
+    if clock == "cycle":
+        amount = span_amount(span, clock)
+        text = f"{amount:g}c"
+    else:
+        text = str(span).strip().lower()
+    return text.replace(".", "p")
+
+
+class ReadingsInput(Strict):
+    """The readings log: one row per entity per reading time."""
+
+    entity: str
+    time: str
+    measurements: tuple[str, ...] = Field(min_length=1)
+    # Columns whose latest value at or before a snapshot is copied as it is (e.g. firmware).
+    states: tuple[str, ...] = ()
+
+
+class FailuresInput(Strict):
+    """The failure (event) log; ``types`` picks the event types to predict when it holds several."""
+
+    entity: str
+    time: str
+    type_column: str | None = None
+    types: tuple[str, ...] = ()
+
+    @model_validator(mode="after")
+    def _types(self) -> FailuresInput:
+        if self.types and self.type_column is None:
+            raise ValueError("types needs a type_column")
+        return self
+
+
+class ActionsInput(Strict):
+    """The maintenance log; each listed kind gets a time-since feature."""
+
+    entity: str
+    time: str
+    kind_column: str
+    kinds: tuple[str, ...] = Field(min_length=1)
+
+
+class AttributesInput(Strict):
+    """Static attributes, one row per entity, joined onto every snapshot."""
+
+    entity: str
+    columns: tuple[str, ...] = Field(min_length=1)
+
+
+class SnapshotCadence(Strict):
+    """``every: reading``, or a period (``1d``, or cycles on a cycle clock), maybe ``at: HH:MM``."""
+
+    every: str | float = "reading"
+    at: str | None = Field(default=None, pattern=r"^([01]\d|2[0-3]):[0-5]\d$")
+
+
+class LookbackWindow(Strict):
+    """A window ending at the snapshot: a span ``(t - span, t]`` or the last N readings."""
+
+    span: str | float | None = None
+    readings: int | None = Field(default=None, ge=1)
+    aggregations: tuple[Aggregation, ...] = Field(min_length=1)
+    measurements: tuple[str, ...] | None = None
+    # count_above counts readings strictly above the measurement's limit.
+    limits: dict[str, float] = Field(default_factory=dict)
+
+    @model_validator(mode="after")
+    def _one(self) -> LookbackWindow:
+        if (self.span is None) == (self.readings is None):
+            raise ValueError("give exactly one of span or readings")
+        if ("count_above" in self.aggregations) != bool(self.limits):
+            raise ValueError("count_above and limits go together")
+        return self
+
+
+class DownRule(Strict):
+    """When an entity counts as failed or under repair, so its snapshots are excluded.
+
+    Down from a failure at f through ``f + after_failure`` (inclusive: a snapshot at the failure
+    itself is always excluded), and, when ``until_action`` names action kinds, until the first
+    such action at or after f (snapshots strictly after that action count again).
+    """
+
+    after_failure: str | float = 0.0
+    until_action: tuple[str, ...] = ()
+
+
+class TimelineSpec(Strict):
+    """How to build labelled snapshots from raw readings, failures, actions and attributes."""
+
+    clock: Literal["time", "cycle"] = "time"
+    # Unit of time-since features and of slopes on a time clock (cycle clocks use cycles).
+    unit: Literal["m", "h", "d"] = "h"
+    readings: ReadingsInput
+    failures: FailuresInput
+    actions: ActionsInput | None = None
+    attributes: AttributesInput | None = None
+    snapshots: SnapshotCadence = SnapshotCadence()
+    horizon: str | float
+    windows: tuple[LookbackWindow, ...] = ()
+    calendar: tuple[CalendarPart, ...] = ()
+    down: DownRule = DownRule()
+    # Snapshots whose horizon runs past the end of observation without a failure: excluded, or
+    # (only when asked for) kept as negatives.
+    censored: Literal["exclude", "negative"] = "exclude"
+
+    @model_validator(mode="after")
+    def _check(self) -> TimelineSpec:
+        spans = [("horizon", self.horizon), ("down.after_failure", self.down.after_failure)]
+        spans += [(f"windows[{i}].span", w.span) for i, w in enumerate(self.windows) if w.span]
+        for where, span in spans:
+            try:
+                span_amount(span, self.clock)
+            except ValueError as exc:
+                raise ValueError(f"{where}: {exc}") from None
+        if span_amount(self.horizon, self.clock) <= 0:
+            raise ValueError("horizon: must be positive")
+        if self.snapshots.every != "reading":
+            try:
+                period = span_amount(self.snapshots.every, self.clock)
+            except ValueError as exc:
+                raise ValueError(f"snapshots.every: 'reading' or a period; {exc}") from None
+            if period <= 0:
+                raise ValueError("snapshots.every: must be positive")
+        if self.clock == "cycle" and (self.snapshots.at or self.calendar):
+            raise ValueError("snapshots.at and calendar need a time clock")
+        measured = set(self.readings.measurements)
+        for index, window in enumerate(self.windows):
+            for name in (*(window.measurements or ()), *window.limits):
+                if name not in measured:
+                    raise ValueError(f"windows[{index}]: {name!r} is not a measurement")
+        kinds = set(self.actions.kinds) if self.actions else set()
+        for kind in self.down.until_action:
+            if kind not in kinds:
+                raise ValueError(f"down.until_action: {kind!r} is not one of actions.kinds")
+        names = self.feature_names
+        for name in names:
+            if not re.match(NAME_PATTERN, name):
+                raise ValueError(f"feature name {name!r} is not a valid name; rename the column")
+        repeated = sorted({n for n in names if names.count(n) > 1})
+        if repeated:
+            raise ValueError(f"feature name {repeated[0]!r} would be built twice")
+        return self
+
+    @property
+    def time_suffix(self) -> str:
+        return "c" if self.clock == "cycle" else self.unit
+
+    def window_tag(self, window: LookbackWindow) -> str:
+        if window.readings is not None:
+            return f"{window.readings}r"
+        return span_tag(window.span or 0, self.clock)
+
+    def window_features(self) -> list[tuple[str, int, str, Aggregation]]:
+        """(feature name, window index, measurement, aggregation) in a fixed order."""
+        out: list[tuple[str, int, str, Aggregation]] = []
+        for index, window in enumerate(self.windows):
+            tag = self.window_tag(window)
+            for measurement in window.measurements or self.readings.measurements:
+                for aggregation in window.aggregations:
+                    if aggregation == "count_above" and measurement not in window.limits:
+                        continue
+                    out.append((f"{measurement}__{aggregation}_{tag}", index, measurement,
+                                aggregation))
+        return out
+
+    def action_feature(self, kind: str) -> str:
+        slug = re.sub(r"[^a-z0-9]+", "_", kind.lower()).strip("_")
+        return f"since_{slug}_{self.time_suffix}"
+
+    @property
+    def feature_names(self) -> list[str]:
+        """Every column the builder adds, in order; a config's ``features`` refer to these."""
+        names = [name for name, *_ in self.window_features()]
+        names += list(self.readings.states)
+        names += ["failures_before", f"since_failure_{self.time_suffix}"]
+        kinds = self.actions.kinds if self.actions else ()
+        names += [self.action_feature(kind) for kind in kinds]
+        names += list(self.attributes.columns if self.attributes else ())
+        names += list(self.calendar)
+        return names

@@ -1,0 +1,51 @@
+"""AI4I 2020 (Matzka 2020, UCI; CC BY 4.0): explanations follow the published failure mechanisms.
+
+The data set's documentation states each failure mode's generating rule (see
+fixtures/ai4i2020/SOURCE.md): HDF from a small process-air temperature gap with low speed, PWF
+from power outside 3500-9000 W, OSF from tool wear x torque over a limit, TWF from tool wear.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from causeline.service.explain.explainer import Explainer
+
+MODES = ["TWF", "HDF", "PWF", "OSF", "RNF"]
+MECHANISM_CODES = {
+    "HDF": {"HEAT_GAP_LOW", "SPEED_LOW"},
+    "PWF": {"POWER_LOW", "POWER_HIGH"},
+    "OSF": {"STRAIN_HIGH"},
+    "TWF": {"TOOL_WORN"},
+}
+
+
+def test_held_out_roc_auc(ai4i_bundle) -> None:
+    # Target from the issue; the published rules make failures largely predictable.
+    assert ai4i_bundle.manifest.metrics["roc_auc"] >= 0.95
+
+
+def test_top_reason_follows_published_mechanism(ai4i_bundle, ai4i_table) -> None:
+    explanation = Explainer(ai4i_bundle).explain(ai4i_table)
+    top = np.array([r[0].code if r else "" for r in explanation.reasons], dtype=object)
+    single = (ai4i_table[MODES].sum(axis=1) == 1) & (ai4i_table["Machine failure"] == 1)
+    hits = total = 0
+    for mode, codes in MECHANISM_CODES.items():
+        rows = np.flatnonzero(single & (ai4i_table[mode] == 1))
+        assert rows.size > 20, mode
+        hits += int(np.isin(top[rows], list(codes)).sum())
+        total += rows.size
+    assert hits / total >= 0.90
+
+
+def test_pwf_reason_matches_side_of_power_window(ai4i_bundle, ai4i_table) -> None:
+    # The published PWF rule fails below 3500 W or above 9000 W; the code names the side.
+    explanation = Explainer(ai4i_bundle).explain(ai4i_table)
+    power = ai4i_table["Torque [Nm]"] * ai4i_table["Rotational speed [rpm]"] * 2 * np.pi / 60
+    pwf = np.flatnonzero(ai4i_table["PWF"] == 1)
+    for row in pwf:
+        codes = [r.code for r in explanation.reasons[row]]
+        if power.iloc[row] < 3500:
+            assert "POWER_HIGH" not in codes[:1]
+        if power.iloc[row] > 9000:
+            assert "POWER_LOW" not in codes[:1]
