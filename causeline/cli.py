@@ -7,11 +7,9 @@ too, with the traceback only when ``CAUSELINE_DEBUG=1``.
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import sys
 import traceback
-from collections import Counter
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -165,61 +163,40 @@ def _train(args: argparse.Namespace) -> int:
 
 def _explain(args: argparse.Namespace) -> int:
     from causeline.service.bundle.load import load_bundle
-    from causeline.service.explain.explainer import Explainer
-    from causeline.service.explain.records import explanation_frame, explanation_records
-    from causeline.service.files.rejects import read_lenient, rejects_path, write_rejects
-    from causeline.service.files.spreadsheet import escape_frame
-    from causeline.service.files.storage import atomic_file
-    from causeline.service.files.tables import table_format, write_table
+    from causeline.service.explain.job import explain_file
+    from causeline.service.files.rejects import rejects_path
 
     if args.top is not None and args.top < 1:
         raise CauselineError("--top must be at least 1")
     bundle = load_bundle(args.bundle)
     if _use_dask(args):
-        return _explain_dask(args, bundle)
-    kind = table_format(args.out)
-    if _has_raw_logs(args) == (args.input is not None):
-        raise CauselineError("give either --input or the raw logs (--readings, --events, ...)")
-    if _has_raw_logs(args):
-        # The same build as `causeline build`, so scores match training's features exactly.
-        import numpy as np
+        from causeline.service.dask.explain import explain_partitions
 
-        from causeline.service.features.logs import read_inputs
-        from causeline.service.features.snapshots import snapshot_features
-        from causeline.service.files.rejects import Lenient, empty_rejects
-
-        inputs = read_inputs(bundle.spec, _raw_paths(args))
-        table = snapshot_features(bundle.spec, inputs, latest=args.latest)
-        read = Lenient(table, np.arange(1, len(table) + 1), empty_rejects(table.columns))
-    else:
-        # Unreadable rows go to a rejects file; rows with a bad cell are scored with it as
-        # missing and a warning (dropping them could hide an alert).
-        read = read_lenient(args.input, text_columns=[bundle.spec.id])
-        table = read.table
-    explainer = Explainer(bundle, top_k=args.top)
-    explanation = explainer.explain(table)
-    threshold = bundle.manifest.decision.threshold
-    names = bundle.spec.feature_names
-    if kind == "jsonl":
-        records = explanation_records(explanation, threshold, names, args.all_contributions)
-        with atomic_file(args.out) as temporary, open(temporary, "w", encoding="utf-8") as out:
-            for record in records:
-                out.write(json.dumps(record, ensure_ascii=False) + "\n")
-    else:
-        frame = explanation_frame(
-            explanation, threshold, names, explainer.top_k, args.all_contributions
+        totals = explain_partitions(
+            bundle, args.input, args.out, args.top, args.all_contributions, _dask_settings(args)
         )
-        write_table(escape_frame(frame) if kind == "csv" else frame, args.out)
-    write_rejects(read.rejects, rejects_path(args.out))
-    _print_explain_summary(explanation, args.out)
-    if len(read.rejects):
-        print(f"rejected: {len(read.rejects)} unreadable rows -> {rejects_path(args.out)}")
+    else:
+        totals = explain_file(
+            bundle, args.out, args.input, _raw_paths(args) if _has_raw_logs(args) else None,
+            args.top, args.all_contributions, args.latest,
+        )
+    print(f"explained: {totals.rows} events, {totals.flagged} at or above the threshold -> "
+          f"{args.out}")
+    if totals.warned:
+        print(f"warnings: {totals.warned} events (see the warnings column)")
+    if totals.leading:
+        print("leading reason code of the flagged events:")
+        for code, count in totals.leading.most_common(10):
+            print(f"  {code:<28} {count:>7}  {100 * count / totals.flagged:5.1f} %")
+    if totals.rejected:
+        print(f"rejected: {totals.rejected} unreadable rows -> {rejects_path(args.out)}")
     return 0
 
 
 def _rootcause(args: argparse.Namespace) -> int:
     from causeline.service.bundle.load import load_bundle
-    from causeline.service.rootcause.run import RootCauseOptions, run_rootcause
+    from causeline.service.rootcause.job import RootCauseOptions
+    from causeline.service.rootcause.local import run_rootcause
 
     options = RootCauseOptions(
         predicted=args.predicted, since=args.since, until=args.until,
@@ -283,49 +260,13 @@ def _use_dask(args: argparse.Namespace) -> bool:
 
 
 def _dask_settings(args: argparse.Namespace):  # type: ignore[no-untyped-def]
-    from causeline.service.dask.engine import DaskSettings
+    from causeline.service.dask.cluster import DaskSettings
 
     return DaskSettings(scheduler=args.scheduler)
 
 
 def _progress(message: str) -> None:
     print(message, file=sys.stderr, flush=True)
-
-
-def _explain_dask(args: argparse.Namespace, bundle) -> int:  # type: ignore[no-untyped-def]
-    from causeline.service.dask.engine import explain_partitions
-    from causeline.service.files.rejects import rejects_path
-
-    totals = explain_partitions(
-        bundle, args.input, args.out, args.top, args.all_contributions, _dask_settings(args)
-    )
-    _print_explain_counts(totals.rows, totals.flagged, totals.warned, totals.leading, args.out)
-    if totals.rejected:
-        print(f"rejected: {totals.rejected} unreadable rows -> {rejects_path(args.out)}")
-    return 0
-
-
-def _print_explain_summary(explanation, out: Path) -> None:  # type: ignore[no-untyped-def]
-    leading = Counter(
-        reasons[0].code
-        for reasons, flagged_row in zip(explanation.reasons, explanation.decision, strict=True)
-        if reasons and flagged_row
-    )
-    warned = sum(1 for w in explanation.warnings if w)
-    rows, flagged = len(explanation.ids), int(explanation.decision.sum())
-    _print_explain_counts(rows, flagged, warned, leading, out)
-
-
-def _print_explain_counts(
-    rows: int, flagged: int, warned: int, leading: Counter[str], out: Path
-) -> None:
-    print(f"explained: {rows} events, {flagged} at or above the threshold -> {out}")
-    if warned:
-        print(f"warnings: {warned} events (see the warnings column)")
-    if leading:
-        print("leading reason code of the flagged events:")
-        for code, count in leading.most_common(10):
-            print(f"  {code:<28} {count:>7}  {100 * count / flagged:5.1f} %")
 
 
 def main(argv: Sequence[str] | None = None) -> int:

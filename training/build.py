@@ -1,7 +1,8 @@
 """``build``: from raw timelines (readings, failures, actions, attributes) to a snapshot table.
 
-The building itself is :func:`service.timeline.build_snapshots`, shared with scoring; this
-module reads the files, checks the config and writes the table ``train`` consumes.
+The building itself is :func:`causeline.service.features.snapshots.build_snapshots`, shared
+with scoring; this module reads the files, checks the config and writes the table ``train``
+consumes.
 """
 
 from __future__ import annotations

@@ -3,8 +3,8 @@
 Explaining eight events costs little more than explaining one (the per-call overhead of building
 features dominates), so while one batch is being explained, requests that arrive wait and are then
 explained together. Nothing waits on purpose: an idle server explains a lone request at once.
-Rows are independent in :meth:`service.explain.Explainer.explain`, so each request's slice of a
-batch equals what it would get alone.
+Rows are independent in :meth:`~causeline.service.explain.explainer.Explainer.explain`, so each
+request's slice of a batch equals what it would get alone.
 """
 
 from __future__ import annotations
@@ -158,7 +158,7 @@ def explain_jobs(jobs: Sequence[Job]) -> list[Scored]:
 def log_records(
     model: Model, events: Sequence[Mapping[str, Any]], results: Sequence[Mapping[str, Any]]
 ) -> list[dict[str, Any]]:
-    """Prediction-log records (:mod:`service.predlog`'s format) for scored events."""
+    """Prediction-log records (the format of :mod:`causeline.service.files.predlog`)."""
     logged_at = datetime.now(UTC).isoformat(timespec="milliseconds")
     name, version = model.name, model.version
     return [

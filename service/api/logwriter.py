@@ -4,7 +4,7 @@ Rule when logging cannot keep up or the disk fails: scoring goes on. Records tha
 bounded queue are dropped and counted (``causeline_prediction_log_dropped_records{reason="queue
 full"}``); a failed write drops its records, counts an error, marks the log as failing in
 readiness, and the next batch tries again with a fresh segment. Lines are fsynced every
-``fsync_seconds`` and at shutdown; the record format is :mod:`service.predlog`'s.
+``fsync_seconds`` and at shutdown; the record format is :mod:`causeline.service.files.predlog`'s.
 """
 
 from __future__ import annotations

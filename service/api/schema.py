@@ -1,8 +1,9 @@
 """The fields an event may carry for one bundle, and the JSON-level checks made before scoring.
 
 Checks that need the bundle's categories or missing-value rules come from
-:class:`service.features.FeatureMatrix` problems after the features are built; both kinds end up
-as :class:`service.problems.FieldError` naming the event and the field.
+:class:`~causeline.service.features.builder.FeatureMatrix` problems after the features are built;
+both kinds end up as :class:`~causeline.service.api.problems.FieldError` naming the event and the
+field.
 """
 
 from __future__ import annotations

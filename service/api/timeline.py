@@ -1,7 +1,8 @@
 """One entity's raw logs to the event ``/v1/score`` takes, built by the batch build's own code.
 
-``service.timeline.entity_features`` is the function ``causeline build`` runs over whole logs, so
-a snapshot scored online has exactly the features the model was trained on.
+:func:`causeline.service.features.snapshots.entity_features` runs the code ``causeline build``
+runs over whole logs, so a snapshot scored online has exactly the features the model was trained
+on.
 """
 
 from __future__ import annotations

@@ -11,7 +11,7 @@ bounded samples below, not the size of the input:
 2. the client fits HDBSCAN on the sample of at most :data:`SAMPLE_SIZE` events with a cause,
    with ``prediction_data`` kept; the workers place the other events into its groups with
    ``hdbscan.approximate_predict`` and tally each partition's share of every group's
-   description (:mod:`service.rootcause_tally`), which the client adds up in input order;
+   description (:mod:`causeline.service.rootcause.tally`), which the client adds up in input order;
 3. the workers simulate each group's fix on their events, and write nothing: the client
    streams each partition's rows of event_groups.csv into the output in input order.
 
@@ -37,16 +37,14 @@ import numpy as np
 import pandas as pd
 
 from causeline.service.bundle.load import Bundle
-from causeline.service.dask.engine import (
+from causeline.service.dask.cluster import (
     AHEAD,
-    Block,
     DaskSettings,
     dask_client,
-    joined_rejects,
-    read_partitions,
     stream_ordered,
     worker_explainer,
 )
+from causeline.service.dask.partitions import Block, joined_rejects, read_partitions
 from causeline.service.errors import DataError
 from causeline.service.files.predlog import is_prediction_log
 from causeline.service.files.rejects import REASON, ROW
@@ -58,14 +56,14 @@ from causeline.service.rootcause.grouping import (
     default_min_cluster_size,
 )
 from causeline.service.rootcause.intake import EventInput, event_times, screen_rows, window_mask
-from causeline.service.rootcause.run import (
+from causeline.service.rootcause.job import (
     STEPS,
     Grouping,
     RootCauseOptions,
     RootCauseResult,
     SelectedEvents,
-    _quiet,
     finish_rootcause,
+    quiet,
     start_rootcause,
 )
 from causeline.service.rootcause.tally import (
@@ -218,7 +216,7 @@ def run_rootcause_dask(
     out: Path,
     options: RootCauseOptions | None = None,
     settings: DaskSettings | None = None,
-    progress=_quiet,  # type: ignore[no-untyped-def]
+    progress=quiet,  # type: ignore[no-untyped-def]
     sample_size: int = SAMPLE_SIZE,
     reference_size: int = REFERENCE_SIZE,
 ) -> RootCauseResult:

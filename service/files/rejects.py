@@ -7,8 +7,8 @@ in a CSV or JSON-lines file, header = line 1; its 1-based position in a Parquet 
 and the original cells. Broken lines (a wrong number of fields, not JSON) and bytes that are not
 UTF-8 are caught here, per row (:func:`lenient_text` does the same for text already read, such as
 one block of a large file); a cell of the wrong type is caught later by the feature builder
-(:attr:`service.features.FeatureMatrix.problems`) and moved over with :func:`add_rejects`. A
-missing column stays a whole-file error: no row could be right.
+(:attr:`causeline.service.features.builder.FeatureMatrix.problems`) and moved over with
+:func:`add_rejects`. A missing column stays a whole-file error: no row could be right.
 """
 
 from __future__ import annotations
@@ -60,7 +60,8 @@ class Lenient:
 
 
 def read_lenient(path: Path, text_columns: Iterable[str] = ()) -> Lenient:
-    """Read a table as :func:`service.tables.read_table` does, setting unreadable rows aside."""
+    """Read a table as :func:`~causeline.service.files.tables.read_table` does, setting
+    unreadable rows aside."""
     path = Path(path)
     text = list(text_columns)
     kind = table_format(path)

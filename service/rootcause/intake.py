@@ -40,8 +40,9 @@ class EventInput:
     """The readable input rows, where ids and times come from, and the rows set aside.
 
     ``rows`` holds each table row's number in the source (its line in a CSV or JSON-lines file);
-    ``rejects`` the rows that could not be read (:mod:`service.rejects`); ``repeats_dropped``
-    the earlier log entries of event ids logged more than once (:func:`latest_entries`).
+    ``rejects`` the rows that could not be read (:mod:`causeline.service.files.rejects`);
+    ``repeats_dropped`` the earlier log entries of event ids logged more than once
+    (:func:`latest_entries`).
     """
 
     table: pd.DataFrame

@@ -494,7 +494,7 @@ def test_contributions_flag_takes_only_all(client: TestClient, openapi: OpenAPIC
 
 
 def test_openapi_declares_what_the_scoring_endpoints_read(client: TestClient) -> None:
-    # The scoring endpoints read the body, flag and key by hand (service.api_requests); the
+    # The scoring endpoints read the body, flag and key by hand (causeline.service.api.reading); the
     # document must still say what they take, as it does for the endpoints FastAPI reads.
     spec = client.get("/openapi.json").json()
     schemes = set(spec["components"]["securitySchemes"])

@@ -153,7 +153,7 @@ def test_explain_from_raw_logs_equals_explain_of_the_built_table(built, tmp_path
 
 
 # Bad input to the timeline endpoint: each must be a 422 problem naming the field that holds the
-# bad value, as /v1/score names the field of an event (service.api_schema.EventSchema).
+# bad value, as /v1/score names the field of an event (causeline.service.api.schema.EventSchema).
 
 
 @pytest.fixture(scope="module")

@@ -19,11 +19,13 @@ from distributed import LocalCluster
 from sklearn.metrics import adjusted_rand_score
 
 from causeline.cli import main
-from causeline.service.dask import engine as dask_engine
-from causeline.service.dask.engine import DaskSettings
+from causeline.service.dask import cluster as dask_cluster
+from causeline.service.dask import partitions
+from causeline.service.dask.cluster import DaskSettings
 from causeline.service.dask.rootcause import run_rootcause_dask
 from causeline.service.explain.explainer import Explainer
-from causeline.service.rootcause.run import EVENT_GROUPS, GROUPS, REJECTS, run_rootcause
+from causeline.service.rootcause.job import EVENT_GROUPS, GROUPS, REJECTS
+from causeline.service.rootcause.local import run_rootcause
 
 PARTS = 4
 EXPLAIN_ROWS = 12_000
@@ -52,7 +54,7 @@ def test_explain_contributions_are_identical(  # type: ignore[no-untyped-def]
     table = demo_table.iloc[:EXPLAIN_ROWS]
     table.iloc[: EXPLAIN_ROWS // 2].to_csv(tmp_path / "a.csv", index=False)
     table.iloc[EXPLAIN_ROWS // 2:].to_csv(tmp_path / "b.csv", index=False)
-    monkeypatch.setattr(dask_engine, "CSV_BLOCK", "512KiB")  # several partitions per file
+    monkeypatch.setattr(partitions, "CSV_BLOCK", "512KiB")  # several partitions per file
     out = tmp_path / "scores.parquet"
     code = main([
         "explain", "--bundle", str(demo_bundle.path), "--input", str(tmp_path / "*.csv"),
@@ -108,8 +110,8 @@ def test_explain_sets_broken_rows_aside_as_the_local_engine_does(  # type: ignor
     lines = demo_table.iloc[:BROKEN_ROWS].to_csv(index=False).encode().split(b"\n")[:-1]
     broken = _break_lines(lines)
     source.write_bytes(b"\n".join(lines) + b"\n")
-    monkeypatch.setattr(dask_engine, "CSV_BLOCK", BLOCK)
-    assert len(dask_engine.read_partitions(source, ["snapshot_id"]).parts) >= 4
+    monkeypatch.setattr(partitions, "CSV_BLOCK", BLOCK)
+    assert len(partitions.read_partitions(source, ["snapshot_id"]).parts) >= 4
     (tmp_path / "local").mkdir()
     (tmp_path / "dask").mkdir()
     local, dask_out = tmp_path / "local" / "scores.csv", tmp_path / "dask" / "scores.csv"
@@ -139,7 +141,7 @@ def test_a_glob_of_csv_files_is_numbered_as_one_file(  # type: ignore[no-untyped
     (tmp_path / "in" / "b.csv").write_bytes(b"\n".join([lines[0], *lines[split:]]) + b"\n")
     whole = tmp_path / "whole.csv"  # the same rows as one file: what the local engine reads
     whole.write_bytes(b"\n".join(lines) + b"\n")
-    monkeypatch.setattr(dask_engine, "CSV_BLOCK", BLOCK)
+    monkeypatch.setattr(partitions, "CSV_BLOCK", BLOCK)
     (tmp_path / "local").mkdir()
     (tmp_path / "dask").mkdir()
     local, dask_out = tmp_path / "local" / "scores.csv", tmp_path / "dask" / "scores.csv"
@@ -151,8 +153,8 @@ def test_a_glob_of_csv_files_is_numbered_as_one_file(  # type: ignore[no-untyped
 
 
 def test_block_offsets_add_up_the_earlier_spans() -> None:
-    assert dask_engine.block_offsets([428, 429, 0, 7]).tolist() == [0, 428, 857, 857]
-    assert dask_engine.block_offsets([]).tolist() == []
+    assert partitions.block_offsets([428, 429, 0, 7]).tolist() == [0, 428, 857, 857]
+    assert partitions.block_offsets([]).tolist() == []
 
 
 def _both_engines(bundle, local_input, dask_input, cluster, tmp_path):  # type: ignore[no-untyped-def]
@@ -179,8 +181,8 @@ def test_rootcause_sets_broken_and_bad_rows_aside_as_the_local_engine_does(  # t
     lines[7000] = b",".join(cells)
     source = tmp_path / "events.csv"
     source.write_bytes(b"\n".join(lines) + b"\n")
-    monkeypatch.setattr(dask_engine, "CSV_BLOCK", "256KiB")
-    assert len(dask_engine.read_partitions(source, ["snapshot_id"]).parts) >= 4
+    monkeypatch.setattr(partitions, "CSV_BLOCK", "256KiB")
+    assert len(partitions.read_partitions(source, ["snapshot_id"]).parts) >= 4
     local = _both_engines(demo_bundle, source, source, cluster, tmp_path)
     # The local engine is the reference: same rejects (line numbers, reasons, cells), same
     # groups and event groups.
@@ -236,7 +238,7 @@ def _closed_port() -> int:
 def test_unreachable_scheduler_is_one_clear_line(  # type: ignore[no-untyped-def]
     demo_bundle, parts, tmp_path, capsys, monkeypatch
 ) -> None:
-    monkeypatch.setattr(dask_engine, "CONNECT_TIMEOUT", 2)
+    monkeypatch.setattr(dask_cluster, "CONNECT_TIMEOUT", 2)
     address = f"tcp://127.0.0.1:{_closed_port()}"
     code = main([
         "rootcause", "--bundle", str(demo_bundle.path), "--events", str(parts),

@@ -43,7 +43,7 @@ from causeline.service.bundle.manifest import CHECKSUMS, MANIFEST, MODEL
 from causeline.service.errors import BundleError
 from causeline.service.files import predlog
 from causeline.service.files.checksum import checksum_text
-from causeline.service.rootcause.run import EVENT_GROUPS, GROUPS, REJECTS, REPORT
+from causeline.service.rootcause.job import EVENT_GROUPS, GROUPS, REJECTS, REPORT
 from causeline.service.rootcause.tracking import SUMMARY
 from tests.api.test_api import KEY, demo_events, metric, rewrite_bundle, tamper
 from tests.conftest import DEMO_CONFIG

@@ -1,4 +1,4 @@
-"""Snapshots, look-back features and horizon labels from raw timelines (service.timeline).
+"""Snapshots, look-back features and horizon labels from raw timelines (features.snapshots).
 
 Known answers are worked out by hand in the comments; window aggregates are checked against a
 direct computation written here with plain pandas on each window, not with the builder.

@@ -11,7 +11,8 @@ from sklearn.metrics import adjusted_rand_score
 
 from causeline.service.explain.explainer import Explainer
 from causeline.service.rootcause.grouping import UNGROUPED, GroupFinder, cause_mix
-from causeline.service.rootcause.run import RootCauseOptions, RootCauseResult, run_rootcause
+from causeline.service.rootcause.job import RootCauseOptions, RootCauseResult
+from causeline.service.rootcause.local import run_rootcause
 from fixtures.demo.generate import expected_events
 from tests.conftest import AI4I_CSV, DEMO_CAUSE_CODES, DEMO_CONFIG
 

@@ -14,7 +14,8 @@ from causeline.service.errors import DataError
 from causeline.service.explain.explainer import Explainer
 from causeline.service.files.predlog import PredictionLogWriter
 from causeline.service.rootcause import report as htmlreport
-from causeline.service.rootcause.run import EVENT_GROUPS, GROUPS, RootCauseOptions, run_rootcause
+from causeline.service.rootcause.job import EVENT_GROUPS, GROUPS, RootCauseOptions
+from causeline.service.rootcause.local import run_rootcause
 from causeline.service.rootcause.tracking import PastGroup, PreviousRun, track
 from fixtures.demo.generate import FAULTY_FIRMWARE
 

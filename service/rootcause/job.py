@@ -1,7 +1,12 @@
-"""The root-cause batch job end to end: events in, groups.csv / event_groups.csv / report out.
+"""The root-cause job as every engine runs it: options checked before any work, then the groups
+described, tracked across runs and written (``groups.csv``, ``event_groups.csv``, ``report.html``,
+``rejects.csv``, ``summary.json``).
 
-Everything lands in one folder written atomically: a run that fails half-way leaves the previous
-run's folder exactly as it was.
+An engine reads, selects and explains the events and finds the groups its own way (the local
+one in :mod:`causeline.service.rootcause.local`, the Dask one in
+:mod:`causeline.service.dask.rootcause`), then hands :func:`finish_rootcause` what it found and
+the :class:`Slices` that reach its events again. Everything lands in one folder written
+atomically: a run that fails half-way leaves the previous run's folder exactly as it was.
 """
 
 from __future__ import annotations
@@ -18,9 +23,7 @@ import pandas as pd
 
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import DataError
-from causeline.service.explain.explainer import Explainer
 from causeline.service.explain.reasons import ReasonCatalogue
-from causeline.service.files.predlog import is_prediction_log
 from causeline.service.files.rejects import (
     write_rejects,
 )
@@ -32,25 +35,14 @@ from causeline.service.rootcause.fix import Target, fix_targets
 from causeline.service.rootcause.grouping import (
     LEADING_SHARE,
     UNGROUPED,
-    GroupFinder,
-    cause_mix,
     find_groups,
 )
 from causeline.service.rootcause.intake import (
-    event_times,
     parse_time,
-    read_events,
-    screen_rows,
-    window_mask,
 )
 from causeline.service.rootcause.tally import (
-    SEED,
-    EventSlice,
     Tally,
-    avoidable_in_slice,
-    event_frame,
     group_row,
-    tally_slice,
     weekly_frame,
 )
 from causeline.service.rootcause.tracking import (
@@ -68,12 +60,16 @@ GROUPS = "groups.csv"
 EVENT_GROUPS = "event_groups.csv"
 REPORT = "report.html"
 REJECTS = "rejects.csv"
+
+
 CAUTION = (
     "Model estimates, not a diagnosis. Groups, reason codes and events avoidable come from a "
     "statistical model of past data; they show associations and may be wrong. Where food or "
     "equipment safety is at stake, follow the codes and rules that apply locally and have a "
     "licensed technician inspect the equipment before acting."
 )
+
+
 STEPS = 6
 
 
@@ -99,8 +95,8 @@ class JobStart:
 class SelectedEvents:
     """What every engine hands to :func:`finish_rootcause` besides the groups: counts, the
     rejected rows and the feature rows co-driver shifts of the fix simulation are fitted on
-    (:mod:`service.rootcause_fix`). ``repeats_dropped``: earlier prediction-log entries of
-    event ids logged again (:func:`service.rootcause_input.latest_entries`)."""
+    (:mod:`causeline.service.rootcause.fix`). ``repeats_dropped``: earlier prediction-log entries of
+    event ids logged again (:func:`causeline.service.rootcause.intake.latest_entries`)."""
 
     reference: np.ndarray
     rejects: pd.DataFrame
@@ -131,21 +127,6 @@ class Slices(Protocol):
         ...
 
 
-class LocalSlices:
-    """The local engine's events: one slice, in memory."""
-
-    def __init__(self, bundle: Bundle, part: EventSlice, reference: np.ndarray) -> None:
-        self.bundle = bundle
-        self.part = part
-        self.reference = reference
-
-    def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
-        return avoidable_in_slice(self.bundle, self.part, targets, self.reference)
-
-    def event_frames(self, group_ids: list[str]) -> Iterator[pd.DataFrame]:
-        yield event_frame(self.part, group_ids, UNGROUPED)
-
-
 @dataclass(frozen=True)
 class RootCauseResult:
     """The run's group table and summary; ``event_groups`` is read back from its CSV."""
@@ -160,72 +141,8 @@ class RootCauseResult:
         return pd.read_csv(self.folder / EVENT_GROUPS, dtype=text)
 
 
-def _quiet(message: str) -> None:
+def quiet(message: str) -> None:
     """The default progress sink: say nothing."""
-
-
-def run_rootcause(
-    bundle: Bundle,
-    events_path: Path,
-    out: Path,
-    options: RootCauseOptions | None = None,
-    progress=_quiet,  # type: ignore[no-untyped-def]
-) -> RootCauseResult:
-    """Group the selected events and write the outputs into ``out``."""
-    options = options or RootCauseOptions()
-    out = Path(out)
-    start = start_rootcause(out, options)
-    since, until = start.since, start.until
-
-    if is_prediction_log(events_path) and not options.predicted:
-        raise DataError(
-            f"{events_path}: a prediction log has no labels; pass --predicted to group rows "
-            "scored at or above the threshold"
-        )
-    progress(f"step 1/{STEPS}: reading {events_path}")
-    source = read_events(bundle, events_path)
-    if source.repeats_dropped:
-        progress(f"step 1/{STEPS}: {source.repeats_dropped:,} repeated log entries dropped "
-                 "(an event id logged more than once counts once, its latest entry)")
-    times = event_times(source)
-    window = window_mask(times, since, until, source.time_column)
-    table = source.table[window]
-    times = times.loc[table.index]
-
-    progress(f"step 2/{STEPS}: selecting events among {len(table):,} rows")
-    screened = screen_rows(
-        bundle, table, source.rows[window], source.rejects, options.predicted,
-        f"{events_path}: ",
-    )
-    rejects, reference, selected = screened.rejects, screened.reference, screened.selected
-    table, times = table[screened.keep], times[screened.keep]
-    events = table[selected].reset_index(drop=True)
-    times = times[selected].reset_index(drop=True)
-
-    progress(f"step 3/{STEPS}: explaining {len(events):,} events")
-    explainer = Explainer(bundle)
-    explanation = explainer.explain(events)
-    mix, has_cause = cause_mix(explanation.code_contributions)
-
-    progress(f"step 4/{STEPS}: clustering")
-    finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mix, has_cause)
-    part = EventSlice(
-        index=0, events=events, times=times, explanation=explanation,
-        keys=np.random.default_rng(SEED).random(len(events)), entity=bundle.spec.entity,
-        labels=finder.labels_, strength=finder.strength_,
-    )
-    groups = int(finder.labels_.max(initial=-1)) + 1
-    selection = SelectedEvents(
-        reference=reference, rejects=rejects, time_column=source.time_column,
-        rows_read=len(source.table) + source.repeats_dropped + len(source.rejects),
-        rows_in_window=len(table), repeats_dropped=source.repeats_dropped,
-    )
-    grouping = Grouping(groups, {
-        "engine": "local", "min_cluster_size": finder.min_cluster_size_,
-        "min_samples": finder.min_samples_,
-    }, tally_slice(part, groups, explainer.catalogue))
-    return finish_rootcause(bundle, events_path, out, options, start, selection, grouping,
-                            LocalSlices(bundle, part, reference), progress)
 
 
 def start_rootcause(out: Path, options: RootCauseOptions) -> JobStart:
@@ -249,7 +166,7 @@ def finish_rootcause(
     selection: SelectedEvents,
     grouping: Grouping,
     slices: Slices,
-    progress=_quiet,  # type: ignore[no-untyped-def]
+    progress=quiet,  # type: ignore[no-untyped-def]
 ) -> RootCauseResult:
     """Describe, track and write the groups: the part every engine shares."""
     tally, rejects = grouping.tally, selection.rejects

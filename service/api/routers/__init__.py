@@ -1,0 +1,1 @@
+"""The API's routes, one router per resource: scoring, models, health (with metrics), admin."""

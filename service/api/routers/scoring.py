@@ -1,0 +1,81 @@
+"""``POST /v1/score`` and ``POST /v1/score/timeline``: probabilities, decisions and reason codes.
+
+Both check the key and read the body themselves (see :mod:`causeline.service.api.reading`):
+FastAPI's per-request solving of a declared body, query flag and security schemes cost more than
+the checks. The OpenAPI document declares both as it would for dependencies.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter, Request
+from fastapi.responses import Response
+from starlette.concurrency import run_in_threadpool
+
+from causeline.service.api import problems
+from causeline.service.api.auth import api_key_header, bearer
+from causeline.service.api.bodies import ScoreRequest, ScoreResponse, TimelineScoreRequest
+from causeline.service.api.dependencies import check_key, service_of
+from causeline.service.api.jsonio import FastJSONResponse
+from causeline.service.api.problems import FieldError, Problem
+from causeline.service.api.reading import all_contributions, openapi_request, read_body
+from causeline.service.api.timeline import online_event
+
+router = APIRouter(tags=["scoring"])
+_SCORING: dict[str, Any] = {
+    "response_model": ScoreResponse,
+    "responses": problems.responses(400, 401, 403, 413, 415, 422, 500),
+}
+_SECURITY = [bearer.scheme_name, api_key_header.scheme_name]
+
+
+@router.post("/v1/score", openapi_extra=openapi_request(ScoreRequest, _SECURITY), **_SCORING)
+async def score(request: Request) -> Response:
+    """Probability, decision and ranked reason codes for each event."""
+    check_key(request)
+    payload = await read_body(request, ScoreRequest)
+    return await _score(request, payload.model, payload.events, all_contributions(request))
+
+
+@router.post("/v1/score/timeline",
+             openapi_extra=openapi_request(TimelineScoreRequest, _SECURITY), **_SCORING)
+async def score_timeline(request: Request) -> Response:
+    """Score one entity from its raw logs: the snapshot is built by the batch build's code."""
+    check_key(request)
+    payload = await read_body(request, TimelineScoreRequest)
+    flag = all_contributions(request)
+    current = service_of(request).current
+    assert current is not None
+    model, schema = current.pick(payload.model)
+    event = await run_in_threadpool(online_event, model.bundle, payload, schema.reject_unknown)
+    return await _score(request, payload.model, [event], flag)
+
+
+async def _score(
+    request: Request, name: str | None, events: list[dict[str, Any]], all_contributions: bool
+) -> Response:
+    """The scoring both endpoints share: checks and batched explanation (which counts and logs)."""
+    service = service_of(request)
+    current = service.current
+    assert current is not None
+    model, schema = current.pick(name)
+    limit = service.settings.max_events
+    if len(events) > limit:
+        raise Problem(
+            413, f"{len(events)} events; at most {limit} per request",
+            "too-many-events",
+            [FieldError(field="events", message=f"at most {limit} events per request")],
+        )
+    errors = schema.check(events)
+    if not errors:
+        scored = await service.batcher.score(model, schema, events, all_contributions)
+        errors = scored.errors
+    if errors:
+        raise Problem(
+            422, f"{len(errors)} invalid field(s) in {len(events)} event(s)",
+            "invalid-events", errors,
+        )
+    body = {"model": {"name": model.name, "version": model.version},
+            "results": scored.records}
+    return FastJSONResponse(body)

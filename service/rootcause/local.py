@@ -1,0 +1,125 @@
+"""The local root-cause engine: one process reads, selects and explains the events, finds the
+groups on all of them, then finishes the job as every engine does
+(:func:`causeline.service.rootcause.job.finish_rootcause`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from causeline.service.bundle.load import Bundle
+from causeline.service.errors import DataError
+from causeline.service.explain.explainer import Explainer
+from causeline.service.files.predlog import is_prediction_log
+from causeline.service.rootcause.fix import Target
+from causeline.service.rootcause.grouping import (
+    UNGROUPED,
+    GroupFinder,
+    cause_mix,
+)
+from causeline.service.rootcause.intake import (
+    event_times,
+    read_events,
+    screen_rows,
+    window_mask,
+)
+from causeline.service.rootcause.job import (
+    STEPS,
+    Grouping,
+    RootCauseOptions,
+    RootCauseResult,
+    SelectedEvents,
+    finish_rootcause,
+    quiet,
+    start_rootcause,
+)
+from causeline.service.rootcause.tally import (
+    SEED,
+    EventSlice,
+    avoidable_in_slice,
+    event_frame,
+    tally_slice,
+)
+
+
+class LocalSlices:
+    """The local engine's events: one slice, in memory."""
+
+    def __init__(self, bundle: Bundle, part: EventSlice, reference: np.ndarray) -> None:
+        self.bundle = bundle
+        self.part = part
+        self.reference = reference
+
+    def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
+        return avoidable_in_slice(self.bundle, self.part, targets, self.reference)
+
+    def event_frames(self, group_ids: list[str]) -> Iterator[pd.DataFrame]:
+        yield event_frame(self.part, group_ids, UNGROUPED)
+
+
+def run_rootcause(
+    bundle: Bundle,
+    events_path: Path,
+    out: Path,
+    options: RootCauseOptions | None = None,
+    progress=quiet,  # type: ignore[no-untyped-def]
+) -> RootCauseResult:
+    """Group the selected events and write the outputs into ``out``."""
+    options = options or RootCauseOptions()
+    out = Path(out)
+    start = start_rootcause(out, options)
+    since, until = start.since, start.until
+
+    if is_prediction_log(events_path) and not options.predicted:
+        raise DataError(
+            f"{events_path}: a prediction log has no labels; pass --predicted to group rows "
+            "scored at or above the threshold"
+        )
+    progress(f"step 1/{STEPS}: reading {events_path}")
+    source = read_events(bundle, events_path)
+    if source.repeats_dropped:
+        progress(f"step 1/{STEPS}: {source.repeats_dropped:,} repeated log entries dropped "
+                 "(an event id logged more than once counts once, its latest entry)")
+    times = event_times(source)
+    window = window_mask(times, since, until, source.time_column)
+    table = source.table[window]
+    times = times.loc[table.index]
+
+    progress(f"step 2/{STEPS}: selecting events among {len(table):,} rows")
+    screened = screen_rows(
+        bundle, table, source.rows[window], source.rejects, options.predicted,
+        f"{events_path}: ",
+    )
+    rejects, reference, selected = screened.rejects, screened.reference, screened.selected
+    table, times = table[screened.keep], times[screened.keep]
+    events = table[selected].reset_index(drop=True)
+    times = times[selected].reset_index(drop=True)
+
+    progress(f"step 3/{STEPS}: explaining {len(events):,} events")
+    explainer = Explainer(bundle)
+    explanation = explainer.explain(events)
+    mix, has_cause = cause_mix(explanation.code_contributions)
+
+    progress(f"step 4/{STEPS}: clustering")
+    finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mix, has_cause)
+    part = EventSlice(
+        index=0, events=events, times=times, explanation=explanation,
+        keys=np.random.default_rng(SEED).random(len(events)), entity=bundle.spec.entity,
+        labels=finder.labels_, strength=finder.strength_,
+    )
+    groups = int(finder.labels_.max(initial=-1)) + 1
+    selection = SelectedEvents(
+        reference=reference, rejects=rejects, time_column=source.time_column,
+        rows_read=len(source.table) + source.repeats_dropped + len(source.rejects),
+        rows_in_window=len(table), repeats_dropped=source.repeats_dropped,
+    )
+    grouping = Grouping(groups, {
+        "engine": "local", "min_cluster_size": finder.min_cluster_size_,
+        "min_samples": finder.min_samples_,
+    }, tally_slice(part, groups, explainer.catalogue))
+    return finish_rootcause(bundle, events_path, out, options, start, selection, grouping,
+                            LocalSlices(bundle, part, reference), progress)
