@@ -48,5 +48,9 @@ def test_compose_and_dockerfile() -> None:
     user = re.findall(r"^USER (\S+)$", dockerfile, re.M)
     assert user and user[-1] not in {"root", "0"}
     assert "HEALTHCHECK" in dockerfile and "/v1/health/live" in dockerfile
+    # The image installs the one package from the folders pyproject.toml maps into it, pinned.
+    for folder in ("causeline", "service", "training"):
+        assert re.search(rf"^COPY {folder} \./{folder}$", dockerfile, re.M), folder
+    assert re.search(r"^RUN pip install -c constraints\.txt \.$", dockerfile, re.M)
     names = set(re.findall(r"\b(CAUSELINE_[A-Z_]+)=", dockerfile))
     assert names and all(_known(name) for name in names), names
