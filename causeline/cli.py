@@ -81,9 +81,8 @@ def _parser() -> argparse.ArgumentParser:
     _engine_arguments(rootcause)
     rootcause.add_argument(
         "--fit-sample", type=int, metavar="N",
-        help="with --engine dask: fit the groups on at most N events with a cause (default "
-        "50000), place the rest by prediction; larger agrees better with the local engine "
-        "and costs the client more time and memory",
+        help="find the groups on at most N events with a cause (default 20000), drawn by a "
+        "hash of their ids; the others join the nearest group",
     )
     rootcause.set_defaults(run=_rootcause)
 
@@ -200,16 +199,14 @@ def _rootcause(args: argparse.Namespace) -> int:
 
     options = RootCauseOptions(
         predicted=args.predicted, since=args.since, until=args.until,
-        previous=args.previous, min_group_size=args.min_group_size,
+        previous=args.previous, min_group_size=args.min_group_size, fit_sample=args.fit_sample,
     )
-    if args.fit_sample is not None and (args.engine != "dask" or args.fit_sample < 100):
-        raise CauselineError("--fit-sample needs --engine dask and at least 100 events")
     if _use_dask(args):
-        from causeline.service.dask.rootcause import SAMPLE_SIZE, run_rootcause_dask
+        from causeline.service.dask.rootcause import run_rootcause_dask
 
         result = run_rootcause_dask(
             load_bundle(args.bundle), args.events, args.out, options, _dask_settings(args),
-            progress=_progress, sample_size=args.fit_sample or SAMPLE_SIZE,
+            progress=_progress,
         )
     else:
         result = run_rootcause(

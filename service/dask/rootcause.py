@@ -8,20 +8,23 @@ bounded samples below, not the size of the input:
    The explained events stay on the workers (Dask keeps them, spilling to disk under memory
    pressure); the client receives counts, rejected rows and two bounded samples: feature rows
    for the fix simulation and cause mixes for the fit;
-2. the client fits HDBSCAN on the sample of at most :data:`SAMPLE_SIZE` events with a cause,
-   with ``prediction_data`` kept; the workers place the other events into its groups with
-   ``hdbscan.approximate_predict`` and tally each partition's share of every group's
-   description (:mod:`causeline.service.rootcause.tally`), which the client adds up in input order;
+2. the client finds the groups' profiles
+   (:class:`~causeline.service.rootcause.grouping.GroupFinder`) on a sample of the events with
+   a cause (at most :data:`~causeline.service.rootcause.grouping.FIT_SAMPLE` by default); the
+   workers place every event by the nearest profile, as the local engine does, and tally each
+   partition's share of every group's description (:mod:`causeline.service.rootcause.tally`),
+   which the client adds up in input order;
 3. the workers simulate each group's fix on their events, and write nothing: the client
    streams each partition's rows of event_groups.csv into the output in input order.
 
-When every event with a cause fits in the sample, the fit is the local engine's fit on the same
-events in the same order, so the groups are identical. The smallest group scales with the
-sample: the size the local engine would use for all events, times the sampled share.
+The fit sample is drawn as the local engine draws it, by a hash of the event ids, so both
+engines find the same profiles on the same events whenever the sample is the same: always
+when every event with a cause fits in it. The smallest group scales with the sample: the size
+the local engine would use for all events, times the sampled share.
 
-Samples are drawn without knowing the total: each row gets a seeded random key and the rows
-with the smallest keys win (a bottom-k sample), so one pass suffices and each partition sends
-at most k rows.
+Samples are drawn without knowing the total: each row gets a key (the id's hash for the fit
+sample, a seeded random number for the reference rows) and the rows with the smallest keys win
+(a bottom-k sample), so one pass suffices and each partition sends at most k rows.
 """
 
 from __future__ import annotations
@@ -32,7 +35,6 @@ from pathlib import Path
 from typing import Any
 
 import dask
-import hdbscan
 import numpy as np
 import pandas as pd
 
@@ -50,10 +52,13 @@ from causeline.service.files.predlog import is_prediction_log
 from causeline.service.files.rejects import REASON, ROW
 from causeline.service.rootcause.fix import Target
 from causeline.service.rootcause.grouping import (
+    FIT_SAMPLE,
     UNGROUPED,
     GroupFinder,
+    assign,
+    cause_lift,
     cause_mix,
-    default_min_cluster_size,
+    sample_keys,
 )
 from causeline.service.rootcause.intake import EventInput, event_times, screen_rows, window_mask
 from causeline.service.rootcause.job import (
@@ -75,16 +80,9 @@ from causeline.service.rootcause.tally import (
     tally_slice,
 )
 
-# HDBSCAN's fit grows faster than linearly with points; on the demo 13,000 events fit in about
-# 3 s on one core, 50,000 in well under a minute. Measured on the demo, grouping a sample of
-# half to two thirds of the events moves border events between groups and noise (ARI 0.82-0.95
-# against the fit on all), so the sample is made as large as one core handles comfortably.
-SAMPLE_SIZE = 50_000
 # Rows the fix simulation fits its co-driver lines on (slopes, means, ranges): a uniform sample
 # this large pins them down to well under a per cent.
 REFERENCE_SIZE = 200_000
-# A sampled fit never asks for groups smaller than this (HDBSCAN with min_samples 3).
-SAMPLED_MIN_GROUP = 5
 
 
 @dataclass(frozen=True)
@@ -135,6 +133,7 @@ class _Summary:
     reference: _Sample
     mixes: _Sample
     with_cause: int
+    foreseen: int
 
 
 def _select_part(
@@ -158,9 +157,13 @@ def _select_part(
     rng = np.random.default_rng([SEED, index])
     reference_keys = rng.random(len(screened.reference))
     event_keys = rng.random(len(events))
-    mix, has_cause = cause_mix(explanation.code_contributions)
+    causes = explainer.catalogue.causes
+    mix, has_cause = cause_mix(explanation.code_contributions, causes)
+    lift = cause_lift(explanation.code_contributions, causes)
     caused = np.flatnonzero(has_cause)
-    mixes = _Sample.of(event_keys[caused], mix[caused], index, sample_size)
+    # Each sampled row: the mix, then the lift in the last column.
+    rows = np.column_stack([mix[caused], lift[caused]])
+    mixes = _Sample.of(sample_keys(explanation.ids)[caused], rows, index, sample_size)
     mixes = replace(mixes, position=caused[mixes.position])
     part = EventSlice(
         index=index, events=events, times=times[selected].reset_index(drop=True),
@@ -171,7 +174,7 @@ def _select_part(
         span=block.span, rows=len(block.table) + len(block.rejects), kept=len(table),
         events=len(events), rejects=screened.rejects,
         reference=_Sample.of(reference_keys, screened.reference, index, reference_size),
-        mixes=mixes, with_cause=int(caused.size),
+        mixes=mixes, with_cause=int(caused.size), foreseen=screened.foreseen,
     )
     return _Selected(part, summary)
 
@@ -180,23 +183,12 @@ def _summary_of(selected: _Selected) -> _Summary:
     return selected.summary
 
 
-def _label_part(
-    selected: _Selected, sampled: tuple[np.ndarray, np.ndarray, np.ndarray],
-    clusterer: hdbscan.HDBSCAN | None,
-) -> EventSlice:
-    """On a worker: the sample's labels for its events here, prediction for the others."""
+def _label_part(selected: _Selected, profiles: np.ndarray, bundle_path: str) -> EventSlice:
+    """On a worker: every event of the partition placed by the nearest profile."""
     part = selected.events
-    labels = np.full(len(part), -1, dtype=np.int64)
-    strength = np.zeros(len(part))
-    positions, fitted, weights = sampled
-    labels[positions], strength[positions] = fitted, weights
-    mix, has_cause = cause_mix(part.explanation.code_contributions)
-    rest = np.flatnonzero(has_cause)
-    rest = rest[~np.isin(rest, positions)]
-    if clusterer is not None and rest.size:
-        assigned, weight = hdbscan.approximate_predict(clusterer, mix[rest])
-        labels[rest] = np.asarray(assigned, np.int64)
-        strength[rest] = np.where(labels[rest] >= 0, weight, 0.0)
+    causes = worker_explainer(bundle_path).catalogue.causes
+    mix, has_cause = cause_mix(part.explanation.code_contributions, causes)
+    labels, strength = assign(mix, has_cause, profiles)
     return replace(part, labels=labels, strength=strength)
 
 
@@ -217,11 +209,11 @@ def run_rootcause_dask(
     options: RootCauseOptions | None = None,
     settings: DaskSettings | None = None,
     progress=quiet,  # type: ignore[no-untyped-def]
-    sample_size: int = SAMPLE_SIZE,
     reference_size: int = REFERENCE_SIZE,
 ) -> RootCauseResult:
     """The root-cause job on a Dask cluster; the same outputs as the local engine."""
     options = options or RootCauseOptions()
+    sample_size = options.fit_sample or FIT_SAMPLE
     out = Path(out)
     start = start_rootcause(out, options)
     if Path(events_path).is_dir() and is_prediction_log(Path(events_path)):
@@ -249,18 +241,17 @@ def run_rootcause_dask(
                        lambda _, summary: gathered.add(summary))
         selection = gathered.selection(source.columns, bundle.spec.time)
         mixes, with_cause = gathered.mixes, gathered.with_cause
-        progress(f"step 4/{STEPS}: clustering {gathered.events:,} events")
-        finder, parameters = _fit(mixes, with_cause, options, sample_size)
-        remote = client.scatter(finder.clusterer_, broadcast=True) if (
-            finder.clusterer_ is not None and with_cause > mixes.keys.size) else None
+        progress(f"step 4/{STEPS}: grouping {with_cause:,} events with a cause (profiles found "
+                 f"on {mixes.keys.size:,})")
+        finder = GroupFinder(options.min_group_size).fit(
+            mixes.rows[:, :-1], mixes.keys, with_cause, mixes.rows[:, -1])
+        parameters = {"engine": "dask", **finder.parameters(mixes.keys.size, sample_size)}
         labelled = [
-            client.compute(dask.delayed(_label_part)(
-                future, _sampled_in(mixes, finder, index), remote,
-            ))
-            for index, future in enumerate(selected)
+            client.compute(dask.delayed(_label_part)(future, finder.profiles_, bundle_path))
+            for future in selected
         ]
         del selected  # the labelled slices replace them on the workers
-        groups = int(finder.labels_.max(initial=-1)) + 1
+        groups = int(finder.profiles_.shape[0])
         tally: Tally | None = None
 
         def add(_: int, part: Tally) -> None:
@@ -289,7 +280,7 @@ class _DaskSlices:
         self.reference = reference
 
     def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
-        total = np.zeros(len(targets))
+        total = np.zeros((len(targets), 2))
         if not any(targets):
             return total
         reference = self.client.scatter(self.reference, broadcast=True)
@@ -314,32 +305,6 @@ class _DaskSlices:
             frames.clear()
 
 
-def _fit(
-    mixes: _Sample, with_cause: int, options: RootCauseOptions, sample_size: int
-) -> tuple[GroupFinder, dict[str, Any]]:
-    """HDBSCAN on the sample: the local engine's fit when the sample holds every event."""
-    parameters: dict[str, Any] = {"engine": "dask", "sample_size": sample_size, "seed": SEED}
-    if with_cause <= sample_size:
-        finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mixes.rows)
-        parameters.update(min_cluster_size=finder.min_cluster_size_,
-                          min_samples=finder.min_samples_, sampled_events=int(mixes.keys.size))
-        return finder, parameters
-    full = options.min_group_size or default_min_cluster_size(with_cause)
-    scaled = max(SAMPLED_MIN_GROUP, round(full * sample_size / with_cause))
-    finder = GroupFinder(min_cluster_size=scaled).fit(mixes.rows)
-    parameters.update(min_cluster_size=full, min_samples=finder.min_samples_,
-                      sampled_events=int(mixes.keys.size), sample_min_cluster_size=scaled)
-    return finder, parameters
-
-
-def _sampled_in(
-    mixes: _Sample, finder: GroupFinder, index: int
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The fit's labels and strengths of the sampled events of partition ``index``."""
-    here = mixes.part == index
-    return mixes.position[here], finder.labels_[here], finder.strength_[here]
-
-
 class _Gathered:
     """The partitions' summaries added up as they arrive: counts, rejects, running samples.
 
@@ -350,10 +315,10 @@ class _Gathered:
     def __init__(self, sample_size: int, reference_size: int, width: int, codes: int) -> None:
         self.sample_size, self.reference_size = sample_size, reference_size
         self.reference = _Sample.merge([], reference_size, width)
-        self.mixes = _Sample.merge([], sample_size, codes)
+        self.mixes = _Sample.merge([], sample_size, codes + 1)
         self.rejects: list[pd.DataFrame] = []
         self.spans: list[int] = []
-        self.rows = self.kept = self.events = self.with_cause = 0
+        self.rows = self.kept = self.events = self.with_cause = self.foreseen = 0
 
     def add(self, summary: _Summary) -> None:
         self.reference = _Sample.merge([self.reference, summary.reference], self.reference_size,
@@ -366,6 +331,7 @@ class _Gathered:
         self.kept += summary.kept
         self.events += summary.events
         self.with_cause += summary.with_cause
+        self.foreseen += summary.foreseen
 
     def selection(self, columns: list[str], time_column: str | None) -> SelectedEvents:
         """Counts, rejects numbered as the local job numbers them, and the reference sample."""
@@ -373,7 +339,7 @@ class _Gathered:
         frame = frame[[ROW, REASON, *[c for c in frame.columns if c not in (ROW, REASON)]]]
         return SelectedEvents(
             reference=self.reference.rows, rejects=frame, time_column=time_column,
-            rows_read=self.rows, rows_in_window=self.kept,
+            rows_read=self.rows, rows_in_window=self.kept, foreseen=self.foreseen,
         )
 
 

@@ -41,6 +41,7 @@ class ReasonCatalogue:
     """The bundle's codes, ready to aggregate contributions and render reasons."""
 
     def __init__(self, spec: DatasetSpec, stats: Mapping[str, FeatureStats]) -> None:
+        self.spec = spec
         self.feature_names = spec.feature_names
         self.stats = dict(stats)
         covered = {name for code in spec.reason_codes for name in code.features}
@@ -84,6 +85,13 @@ class ReasonCatalogue:
     @property
     def code_ids(self) -> list[str]:
         return [code.code for code in self.codes]
+
+    @property
+    def causes(self) -> np.ndarray:
+        """Per code, whether it describes a cause: some feature of it is not ``context``."""
+        roles = {feature.name: feature.role for feature in self.spec.features}
+        return np.array([any(roles[name] != "context" for name in code.features)
+                         for code in self.codes], dtype=bool)
 
     def aggregate(self, contributions: np.ndarray, features: np.ndarray) -> np.ndarray:
         """Per-event contribution of each code, shape (events, codes), in log-odds."""

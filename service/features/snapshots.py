@@ -38,6 +38,10 @@ from causeline.service.spec.dataset import DatasetSpec
 from causeline.service.spec.timeline import TimelineSpec
 
 STATUS = "snapshot_status"
+# Beside the target in the labelled table: the failure a positive snapshot foresees, and 1 on
+# the snapshot that counts it (the last before it), so the root-cause job counts it once.
+FAILURE_TIME = "failure_time"
+FAILURE_COUNTED = "failure_counted"
 LATEST = "latest"
 
 
@@ -133,6 +137,15 @@ def build_snapshots(
         snap_codes, snap_times, failure_log, repairs, clock.span(spec.horizon),
         clock.span(spec.down.after_failure), end[snap_codes],
     )
+    # Which failure a positive snapshot foresees, so a failure foreseen by several snapshots
+    # can be counted once (labelled_table marks the one that counts it).
+    upcoming, _ = failure_log.next_after(snap_codes, snap_times)
+    positive = (table[STATUS] == POSITIVE).to_numpy()
+    if clock.cycles:
+        table[FAILURE_TIME] = np.where(positive, upcoming.astype(np.float64), np.nan)
+    else:
+        missing = np.iinfo(np.int64).min  # NaT
+        table[FAILURE_TIME] = np.where(positive, upcoming, missing).view("datetime64[ns]")
     return table
 
 
@@ -146,17 +159,29 @@ def labelled_table(dataset: DatasetSpec, built: pd.DataFrame) -> pd.DataFrame:
     """The table ``train`` consumes: usable snapshots, named as the data-set spec says.
 
     Positive and negative snapshots stay (censored ones too under ``censored: negative``);
-    down snapshots never do. Adds the id column (``<entity>@<time>``) and the 0/1 target.
+    down snapshots never do. Adds the id column (``<entity>@<time>``) and the 0/1 target, then
+    ``failure_time`` (the failure a positive snapshot foresees) and ``failure_counted`` (1 on
+    the last snapshot before each failure: where a horizon spans several snapshots, the one
+    that counts the failure once).
     """
     spec = timeline_of(dataset)
     keep = built[STATUS].isin([POSITIVE, NEGATIVE])
     if spec.censored == "negative":
         keep |= built[STATUS] == CENSORED
     table = built[keep.to_numpy()].reset_index(drop=True)
+    # The last positive snapshot before each failure counts it; earlier ones foresee it too.
+    positive = (table[STATUS] == POSITIVE).to_numpy()
+    keys = [spec.readings.entity, FAILURE_TIME]
+    latest = table[positive].groupby(keys, sort=False)[spec.readings.time].transform("max")
+    counted = np.zeros(len(table), dtype=np.int64)
+    counted[positive] = (table.loc[positive, spec.readings.time] == latest).to_numpy()
     table = _name_columns(dataset, table)
-    table.insert(len(table.columns) - 1, dataset.target,
-                 (table[STATUS] == POSITIVE).astype(np.int64))
-    return table.drop(columns=[STATUS])
+    failure_time = table.pop(FAILURE_TIME)
+    table.insert(len(table.columns) - 1, dataset.target, positive.astype(np.int64))
+    table = table.drop(columns=[STATUS])
+    table[FAILURE_TIME] = failure_time
+    table[FAILURE_COUNTED] = counted
+    return table
 
 
 def entity_features(
@@ -166,7 +191,7 @@ def entity_features(
     code as the batch build; give at least the readings of the look-back windows."""
     spec = timeline_of(dataset)
     built = build_snapshots(spec, inputs, at=LATEST if at is None else pd.Series([at]))
-    return _name_columns(dataset, built).drop(columns=[STATUS])
+    return _name_columns(dataset, built).drop(columns=[STATUS, FAILURE_TIME])
 
 
 def snapshot_features(
@@ -178,7 +203,7 @@ def snapshot_features(
     if latest:
         entity = dataset.entity or timeline_of(dataset).readings.entity
         built = built.groupby(entity, sort=False).tail(1).reset_index(drop=True)
-    return built.drop(columns=[STATUS])
+    return built.drop(columns=[STATUS, FAILURE_TIME])
 
 
 def _name_columns(dataset: DatasetSpec, table: pd.DataFrame) -> pd.DataFrame:

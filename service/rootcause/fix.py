@@ -1,7 +1,9 @@
 """What-if for a group: apply the catalogue's fix targets to its events and re-score them.
 
-The estimate of events avoidable is the drop in calibrated probability summed over the group's
-events. It is a model estimate, not a promise: the model learned associations, not causes.
+Of a group's events, which happened, the events avoidable are those the fix would have
+prevented: per event the share (p - p') / p of its probability that the fix removes, summed
+(:func:`events_avoidable`). It is a model estimate, not a promise: the model learned
+associations, not causes.
 
 A catalogue code groups the features of one mechanism, e.g. days since the coil was cleaned
 (controllable) with the discharge pressure a dirty coil drives up (observable). Setting the
@@ -167,9 +169,23 @@ def events_avoidable(
     before: np.ndarray,
     targets: Sequence[Target],
     reference: np.ndarray | None = None,
-) -> float:
-    """Sum over rows of the drop in calibrated probability once ``targets`` are applied."""
+) -> tuple[float, float]:
+    """What ``targets`` would have changed for these events, two ways (model estimates):
+
+    - events avoidable: the sum over events of (p - p') / p, each event's probability of
+      necessity under monotonicity (Tian & Pearl 2000; among exposed cases, the attributable
+      fraction of epidemiology, Miettinen 1974): of these events, which happened, how many the
+      fix would have prevented;
+    - risk reduction: the sum of p - p', how many fewer events a replay of these same rows would
+      produce, which is smaller because a replay would produce only sum(p) events at all.
+
+    p is the calibrated probability as scored, p' the same with the targets applied; a fix that
+    would raise an event's risk counts 0 for it, not less.
+    """
     if not targets or len(table) == 0:
-        return 0.0
+        return 0.0, 0.0
+    p = np.asarray(before, dtype=np.float64)
     after = probability(bundle, fixed_features(bundle, table, targets, reference))
-    return float(np.sum(np.asarray(before, dtype=np.float64) - after))
+    drop = np.clip(p - after, 0.0, None)
+    necessity = np.where(p > 0, drop / np.where(p > 0, p, 1.0), 0.0)
+    return float(necessity.sum()), float(drop.sum())

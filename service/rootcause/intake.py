@@ -18,6 +18,7 @@ import pandas as pd
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import DataError
 from causeline.service.explain.score import probability
+from causeline.service.features.snapshots import FAILURE_COUNTED
 from causeline.service.files.predlog import is_prediction_log, read_prediction_log
 from causeline.service.files.rejects import (
     add_rejects,
@@ -28,7 +29,7 @@ from causeline.service.files.rejects import (
     merge_reasons,
     read_lenient,
 )
-from causeline.service.files.tables import binary_column
+from causeline.service.files.tables import binary_column, to_numbers
 
 LOG_TIME = "log_logged_at"
 LOG_ID = "log_id"
@@ -153,12 +154,17 @@ def window_mask(
 
 @dataclass(frozen=True)
 class Screened:
-    """Which rows stay (``keep``), their features, which of those are events, and the rejects."""
+    """Which rows stay (``keep``), their features, which of those are events, and the rejects.
+
+    ``foreseen`` counts labelled snapshots left out because a later snapshot counts the same
+    failure (a table built from timelines, whose horizon spans several snapshots).
+    """
 
     keep: np.ndarray
     reference: np.ndarray
     selected: np.ndarray
     rejects: pd.DataFrame
+    foreseen: int = 0
 
 
 def screen_rows(
@@ -187,8 +193,14 @@ def screen_rows(
     rejects = add_rejects(rejects, table, source_rows, bad)
     keep = keep_mask(len(table), bad)
     reference = features.values[keep]
+    foreseen = 0
     if predicted:
         selected = probability(bundle, reference) >= bundle.manifest.decision.threshold
     else:
         selected = event_labels(table[keep][spec.target], spec.target)
-    return Screened(keep, reference, np.asarray(selected, dtype=bool), rejects)
+        if spec.timeline is not None and FAILURE_COUNTED in table.columns:
+            # Each failure once: by the last snapshot before it, not by every one that saw it.
+            counted = to_numbers(table[keep][FAILURE_COUNTED]).fillna(1).to_numpy() == 1
+            foreseen = int((selected & ~counted).sum())
+            selected = selected & counted
+    return Screened(keep, reference, np.asarray(selected, dtype=bool), rejects, foreseen)

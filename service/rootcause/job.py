@@ -35,11 +35,11 @@ from causeline.service.rootcause.fix import Target, fix_targets
 from causeline.service.rootcause.grouping import (
     LEADING_SHARE,
     UNGROUPED,
+    Group,
     find_groups,
+    label_for,
 )
-from causeline.service.rootcause.intake import (
-    parse_time,
-)
+from causeline.service.rootcause.intake import parse_time
 from causeline.service.rootcause.tally import (
     Tally,
     group_row,
@@ -80,6 +80,7 @@ class RootCauseOptions:
     until: str | None = None
     previous: Path | None = None
     min_group_size: int | None = None
+    fit_sample: int | None = None  # events the profiles are found on (default FIT_SAMPLE)
 
 
 @dataclass(frozen=True)
@@ -104,6 +105,7 @@ class SelectedEvents:
     rows_read: int
     rows_in_window: int
     repeats_dropped: int = 0
+    foreseen: int = 0
 
 
 @dataclass(frozen=True)
@@ -119,7 +121,8 @@ class Slices(Protocol):
     """The steps that need every event again, done where the events are (one engine each)."""
 
     def avoidable(self, targets: list[list[Target]]) -> np.ndarray:
-        """Per group label, events its fix would avoid (a model estimate)."""
+        """Per group label, the events its fix would have avoided and the risk reduction
+        (two columns; model estimates)."""
         ...
 
     def event_frames(self, group_ids: list[str]) -> Iterator[pd.DataFrame]:
@@ -150,6 +153,8 @@ def start_rootcause(out: Path, options: RootCauseOptions) -> JobStart:
     _check_out(Path(out))
     if options.min_group_size is not None and options.min_group_size < 2:
         raise DataError("--min-group-size must be at least 2")
+    if options.fit_sample is not None and options.fit_sample < 100:
+        raise DataError("--fit-sample must be at least 100 events")
     return JobStart(
         since=parse_time(options.since, "--since"),
         until=parse_time(options.until, "--until"),
@@ -193,8 +198,9 @@ def finish_rootcause(
             "previous_share": tracked.previous_share[position],
         }
         row.update(group_row(catalogue, group, tally, targets[group.label],
-                             float(avoidable[group.label])))
+                             avoidable[group.label]))
         rows.append(row)
+    _tell_apart(rows, found)
     groups = _group_frame(rows, tally.events - tally.grouped, tally.events)
     group_ids = [""] * grouping.groups
     for position, group in enumerate(found):
@@ -217,6 +223,7 @@ def finish_rootcause(
             "rows_read": selection.rows_read,
             "rejected": len(rejects),
             "repeats_dropped": selection.repeats_dropped,
+            "snapshots_before_counted_failures": selection.foreseen,
             "rows_in_window": selection.rows_in_window,
             "events": tally.events,
             "grouped": tally.grouped,
@@ -284,17 +291,33 @@ def _check_out(out: Path) -> None:
         )
 
 
+def _tell_apart(rows: list[dict[str, Any]], found: list[Group]) -> None:
+    """Two groups under one label say what tells them apart: the code whose share of the mix
+    differs most between them, named on the group where it is larger."""
+    for position, group in enumerate(found):
+        twins = [other for j, other in enumerate(found)
+                 if j != position and rows[j]["label"] == rows[position]["label"]]
+        if not twins:
+            continue
+        codes = set(group.signature).union(*(o.signature for o in twins))
+        gaps = {c: group.signature.get(c, 0.0) - max(o.signature.get(c, 0.0) for o in twins)
+                for c in codes}
+        code = max(sorted(gaps), key=lambda c: gaps[c])
+        rows[position]["label"] += f" (more {label_for([code])})"
+
+
 def _group_frame(rows: list[dict[str, Any]], ungrouped: int, events: int) -> pd.DataFrame:
     frame = pd.DataFrame(rows, columns=GROUP_COLUMNS)
     frame = frame.sort_values("events", ascending=False, kind="stable")
     tail = pd.DataFrame([{
         "group_id": UNGROUPED,
-        "label": "ungrouped: no shared mix of causes",
+        "label": "ungrouped: no clear cause, or none shared with a group",
         "events": ungrouped,
         "share": ungrouped / max(events, 1),
         "drivers": "",
         "fix_action": "",
         "events_avoidable_model_estimate": None,
+        "risk_reduction_model_estimate": None,
     }], columns=GROUP_COLUMNS)
     frame = tail if frame.empty else pd.concat([frame, tail], ignore_index=True)
     for column in ("share", "previous_share"):
@@ -302,9 +325,8 @@ def _group_frame(rows: list[dict[str, Any]], ungrouped: int, events: int) -> pd.
     for column in [c for c in GROUP_COLUMNS if c.endswith("_contribution")]:
         frame[column] = frame[column].astype(float).round(3)
     # A count of events, estimated: tenths are as far as it can be read.
-    frame["events_avoidable_model_estimate"] = (
-        frame["events_avoidable_model_estimate"].astype(float).round(1)
-    )
+    for column in ("events_avoidable_model_estimate", "risk_reduction_model_estimate"):
+        frame[column] = frame[column].astype(float).round(1)
     return frame.reset_index(drop=True)
 
 
@@ -313,8 +335,8 @@ GROUP_COLUMNS = [
     "code_1", "code_1_mean_contribution", "code_2", "code_2_mean_contribution",
     "code_3", "code_3_mean_contribution",
     "driver_values", "drivers", "fix_code", "fix_kind", "fix_action", "fix_simulated",
-    "events_avoidable_model_estimate", "first_event", "last_event", "top_entities",
-    "example_event_ids",
+    "events_avoidable_model_estimate", "risk_reduction_model_estimate", "first_event",
+    "last_event", "top_entities", "example_event_ids",
 ]
 
 

@@ -17,9 +17,13 @@ from causeline.service.explain.explainer import Explainer
 from causeline.service.files.predlog import is_prediction_log
 from causeline.service.rootcause.fix import Target
 from causeline.service.rootcause.grouping import (
+    FIT_SAMPLE,
     UNGROUPED,
     GroupFinder,
+    bottom,
+    cause_lift,
     cause_mix,
+    sample_keys,
 )
 from causeline.service.rootcause.intake import (
     event_times,
@@ -102,24 +106,30 @@ def run_rootcause(
     progress(f"step 3/{STEPS}: explaining {len(events):,} events")
     explainer = Explainer(bundle)
     explanation = explainer.explain(events)
-    mix, has_cause = cause_mix(explanation.code_contributions)
+    mix, has_cause = cause_mix(explanation.code_contributions, explainer.catalogue.causes)
+    caused = np.flatnonzero(has_cause)
+    keys = sample_keys(explanation.ids)
+    fit_sample = options.fit_sample or FIT_SAMPLE
+    fit = caused[bottom(keys[caused], fit_sample)]
 
-    progress(f"step 4/{STEPS}: clustering")
-    finder = GroupFinder(min_cluster_size=options.min_group_size).fit(mix, has_cause)
+    progress(f"step 4/{STEPS}: grouping {caused.size:,} events with a cause "
+             f"(profiles found on {fit.size:,})")
+    lift = cause_lift(explanation.code_contributions, explainer.catalogue.causes)
+    finder = GroupFinder(options.min_group_size).fit(mix[fit], keys[fit], caused.size, lift[fit])
+    labels, strength = finder.assign(mix, has_cause)
     part = EventSlice(
         index=0, events=events, times=times, explanation=explanation,
         keys=np.random.default_rng(SEED).random(len(events)), entity=bundle.spec.entity,
-        labels=finder.labels_, strength=finder.strength_,
+        labels=labels, strength=strength,
     )
-    groups = int(finder.labels_.max(initial=-1)) + 1
+    groups = int(finder.profiles_.shape[0])
     selection = SelectedEvents(
         reference=reference, rejects=rejects, time_column=source.time_column,
         rows_read=len(source.table) + source.repeats_dropped + len(source.rejects),
         rows_in_window=len(table), repeats_dropped=source.repeats_dropped,
+        foreseen=screened.foreseen,
     )
-    grouping = Grouping(groups, {
-        "engine": "local", "min_cluster_size": finder.min_cluster_size_,
-        "min_samples": finder.min_samples_,
-    }, tally_slice(part, groups, explainer.catalogue))
+    grouping = Grouping(groups, {"engine": "local", **finder.parameters(fit.size, fit_sample)},
+                        tally_slice(part, groups, explainer.catalogue))
     return finish_rootcause(bundle, events_path, out, options, start, selection, grouping,
                             LocalSlices(bundle, part, reference), progress)

@@ -138,7 +138,7 @@ class Tally:
 
 def group_row(
     catalogue: ReasonCatalogue, group: Group, tally: Tally, targets: list[Target],
-    avoidable: float,
+    avoidable: np.ndarray,
 ) -> dict[str, Any]:
     """One groups.csv row (without id, status and share, which tracking adds)."""
     g = group.label
@@ -156,7 +156,8 @@ def group_row(
     row["fix_kind"] = fix.kind if fix else ""
     row["fix_action"] = fix.action if fix else "no fix in the catalogue for these reason codes"
     row["fix_simulated"] = "; ".join(t.describe() for t in targets) or "none (observable only)"
-    row["events_avoidable_model_estimate"] = avoidable
+    row["events_avoidable_model_estimate"] = float(avoidable[0])
+    row["risk_reduction_model_estimate"] = float(avoidable[1])
     row["first_event"] = _iso(tally.first[g])
     row["last_event"] = _iso(tally.last[g])
     row["top_entities"] = "; ".join(
@@ -204,7 +205,7 @@ def tally_slice(part: EventSlice, groups: int, catalogue: ReasonCatalogue) -> Ta
     known = part.times.dropna()
     tally.first_event = known.min() if len(known) else None
     tally.last_event = known.max() if len(known) else None
-    mix, _ = cause_mix(explanation.code_contributions)
+    mix, _ = cause_mix(explanation.code_contributions, catalogue.causes)
     entity = _entity(part)
     weeks = _weeks(part.times)
     for g in range(groups):
@@ -231,8 +232,9 @@ def tally_slice(part: EventSlice, groups: int, catalogue: ReasonCatalogue) -> Ta
 def avoidable_in_slice(
     bundle: Bundle, part: EventSlice, targets: list[list[Target]], reference: np.ndarray
 ) -> np.ndarray:
-    """Per group, the slice's share of the events its fix would avoid (a model estimate)."""
-    out = np.zeros(len(targets))
+    """Per group, the slice's share of the events its fix would have avoided and of the risk
+    reduction (columns 0 and 1; model estimates, see :func:`events_avoidable`)."""
+    out = np.zeros((len(targets), 2))
     for g, group_targets in enumerate(targets):
         members = np.flatnonzero(part.labels == g)
         if group_targets and members.size:

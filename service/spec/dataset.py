@@ -19,7 +19,11 @@ from causeline.service.spec.timeline import TimelineSpec
 
 CODE_PATTERN = r"^[A-Z][A-Z0-9_]*$"
 PLACEHOLDER = re.compile(r"\{([A-Za-z_][A-Za-z0-9_]*)(?::(typical))?\}")
-Role = Literal["controllable", "observable"]
+# controllable: a team can change it (a setting, a maintenance interval); observable: a
+# condition that can be measured, not set; context: when, or what came before (calendar,
+# earlier failures, time since the last one). Context explains a score but is no cause: root
+# causes are grouped without it, and it takes no fix target.
+Role = Literal["controllable", "observable", "context"]
 Kind = Literal["numeric", "categorical"]
 Direction = Literal["high", "low", "any"]
 
@@ -175,7 +179,7 @@ class DatasetSpec(Strict):
                     spec = features[target]
                     if spec.role != "controllable":
                         raise ValueError(
-                            f"{where}.fix.targets: {target!r} is observable; only "
+                            f"{where}.fix.targets: {target!r} is {spec.role}; only "
                             "controllable features take a target setting"
                         )
                     if spec.kind == "numeric" and not isinstance(value, int | float):

@@ -16,6 +16,8 @@ CalendarPart = Literal["month", "weekday", "hour"]
 # A span on a time clock: a number and a unit, e.g. 30m, 24h, 7d, 2w.
 DURATION = re.compile(r"^(\d+(?:\.\d+)?)([smhdw])$")
 UNIT_SECONDS = {"s": 1, "m": 60, "h": 3600, "d": 86_400, "w": 604_800}
+# Columns the build adds beside the features (causeline.service.features.snapshots).
+RESERVED = ("snapshot_status", "failure_time", "failure_counted")
 
 
 def span_amount(span: str | float, clock: str) -> float:
@@ -179,6 +181,10 @@ class TimelineSpec(Strict):
         for name in names:
             if not re.match(NAME_PATTERN, name):
                 raise ValueError(f"feature name {name!r} is not a valid name; rename the column")
+        for name in RESERVED:
+            if name in names:
+                raise ValueError(f"feature name {name!r} is the name of a column the build "
+                                 "adds; rename the column")
         repeated = sorted({n for n in names if names.count(n) > 1})
         if repeated:
             raise ValueError(f"feature name {repeated[0]!r} would be built twice")

@@ -24,7 +24,7 @@ from causeline.service.dask import partitions
 from causeline.service.dask.cluster import DaskSettings
 from causeline.service.dask.rootcause import run_rootcause_dask
 from causeline.service.explain.explainer import Explainer
-from causeline.service.rootcause.job import EVENT_GROUPS, GROUPS, REJECTS
+from causeline.service.rootcause.job import EVENT_GROUPS, GROUPS, REJECTS, RootCauseOptions
 from causeline.service.rootcause.local import run_rootcause
 
 PARTS = 4
@@ -211,18 +211,18 @@ def test_rootcause_groups_are_identical_when_the_sample_holds_every_event(  # ty
     assert adjusted_rand_score(local.event_groups["group_id"], events["group_id"]) == 1.0
 
 
-def test_sampled_fit_with_approximate_prediction_agrees(  # type: ignore[no-untyped-def]
+def test_sampled_fit_agrees_with_the_fit_on_every_event(  # type: ignore[no-untyped-def]
     demo_bundle, demo_parquet, parts, tmp_path
 ) -> None:
     local = run_rootcause(demo_bundle, demo_parquet, tmp_path / "local")
     events = len(local.event_groups)
     # No scheduler: the engine starts (and closes) a LocalCluster of its own.
     sampled = run_rootcause_dask(
-        demo_bundle, parts, tmp_path / "dask", settings=DaskSettings(processes=False),
-        sample_size=3300,
+        demo_bundle, parts, tmp_path / "dask", RootCauseOptions(fit_sample=3300),
+        settings=DaskSettings(processes=False),
     )
     parameters = sampled.summary["parameters"]
-    assert parameters["sampled_events"] == 3300 < events  # the rest went through prediction
+    assert parameters["sampled_events"] == 3300 < events  # the rest joined the nearest group
     assert sampled.event_groups["event_id"].tolist() == local.event_groups["event_id"].tolist()
     # sklearn's adjusted Rand index; the bar for the two engines is 0.95.
     ari = adjusted_rand_score(local.event_groups["group_id"], sampled.event_groups["group_id"])
@@ -294,12 +294,12 @@ def test_client_state_does_not_grow_with_the_events(  # type: ignore[no-untyped-
             table = pd.read_parquet(part)
             table["snapshot_id"] = table["snapshot_id"].astype(str) + f"-{copy}"
             table.to_parquet(tripled / f"{copy}-{part.name}", index=False)
-    options = dask_rootcause.RootCauseOptions(min_group_size=30)
+    options = dask_rootcause.RootCauseOptions(min_group_size=30, fit_sample=500)
     settings = DaskSettings(scheduler=cluster.scheduler_address)
     once = run_rootcause_dask(demo_bundle, parts, tmp_path / "once", options, settings,
-                              sample_size=500, reference_size=500)
+                              reference_size=500)
     thrice = run_rootcause_dask(demo_bundle, tripled, tmp_path / "thrice", options, settings,
-                                sample_size=500, reference_size=500)
+                                reference_size=500)
     assert thrice.summary["counts"]["events"] == 3 * once.summary["counts"]["events"]
     assert once.summary["counts"]["events"] > 500  # the samples are full in both runs
     assert sizes["thrice"] < 1.3 * sizes["once"], sizes
@@ -307,20 +307,23 @@ def test_client_state_does_not_grow_with_the_events(  # type: ignore[no-untyped-
     assert len(thrice.event_groups) == thrice.summary["counts"]["events"]
 
 
-def test_fit_sample_flag(demo_bundle, parts, cluster, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
-    out = tmp_path / "dask"
-    assert main([
-        "rootcause", "--bundle", str(demo_bundle.path), "--events", str(parts), "--out", str(out),
-        "--engine", "dask", "--scheduler", cluster.scheduler_address, "--fit-sample", "1000",
-    ]) == 0
-    summary = json.loads((out / "summary.json").read_text("utf-8"))
-    assert summary["parameters"]["sample_size"] == 1000
+def test_fit_sample_flag(demo_bundle, demo_parquet, cluster, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    # Both engines draw the fit sample by a hash of the ids, so they find the same groups.
+    for engine in ("dask", "local"):
+        assert main([
+            "rootcause", "--bundle", str(demo_bundle.path), "--events", str(demo_parquet),
+            "--out", str(tmp_path / engine), "--fit-sample", "1000", "--engine", engine,
+            *(["--scheduler", cluster.scheduler_address] if engine == "dask" else []),
+        ]) == 0
+    summary = json.loads((tmp_path / "dask" / "summary.json").read_text("utf-8"))
+    assert summary["parameters"]["fit_sample"] == 1000
     assert summary["parameters"]["sampled_events"] == 1000 < summary["counts"]["events"]
+    for name in (GROUPS, EVENT_GROUPS):
+        pd.testing.assert_frame_equal(pd.read_csv(tmp_path / "local" / name),
+                                      pd.read_csv(tmp_path / "dask" / name))
     capsys.readouterr()
     assert main([
-        "rootcause", "--bundle", str(demo_bundle.path), "--events", str(parts),
-        "--out", str(tmp_path / "local"), "--fit-sample", "1000",
+        "rootcause", "--bundle", str(demo_bundle.path), "--events", str(demo_parquet),
+        "--out", str(tmp_path / "small"), "--fit-sample", "50",
     ]) == 2
-    assert capsys.readouterr().err.strip().endswith(
-        "--fit-sample needs --engine dask and at least 100 events"
-    )
+    assert capsys.readouterr().err.strip().endswith("--fit-sample must be at least 100 events")

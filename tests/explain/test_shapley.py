@@ -162,13 +162,16 @@ def test_reason_codes_sum_their_features_exactly(ai4i_bundle, ai4i_table) -> Non
     np.testing.assert_allclose(
         code[:, index["AMBIENT"]], features("air_temp_k", "process_temp_k"), atol=1e-12
     )
-    power = explanation.features.values[:, names.index("power_w")]
-    typical = ai4i_bundle.manifest.stats["power_w"].typical
-    off_typical = power != typical
     np.testing.assert_allclose(
-        (code[:, index["POWER_LOW"]] + code[:, index["POWER_HIGH"]])[off_typical],
-        features("power_w", "torque_nm")[off_typical],
+        code[:, index["POWER_OUT_OF_BAND"]], features("power_w", "torque_nm"), atol=1e-12
+    )
+    speed = explanation.features.values[:, names.index("speed_rpm")]
+    typical = ai4i_bundle.manifest.stats["speed_rpm"].typical
+    off_typical = speed != typical
+    np.testing.assert_allclose(
+        (code[:, index["SPEED_LOW"]] + code[:, index["SPEED_HIGH"]])[off_typical],
+        features("speed_rpm")[off_typical],
         atol=1e-12,
     )
-    assert np.all(code[power > typical, index["POWER_LOW"]] == 0.0)
-    assert np.all(code[power < typical, index["POWER_HIGH"]] == 0.0)
+    assert np.all(code[speed > typical, index["SPEED_LOW"]] == 0.0)
+    assert np.all(code[speed < typical, index["SPEED_HIGH"]] == 0.0)
