@@ -55,3 +55,29 @@ def test_pwf_reason_shows_the_side_of_the_power_window(ai4i_bundle, ai4i_table) 
         assert value < 3500 or value > 9000
         shown += 1
     assert shown >= 0.9 * pwf.size
+
+
+def test_the_fresh_simulation_follows_the_public_file_and_its_rules(ai4i_table) -> None:
+    # fixtures/ai4i2020/simulate.py stands in for "another draw of the same process" in the
+    # root-cause checks, so it must look like the public file (Matzka 2020) and obey the
+    # published rules (SOURCE.md), recomputed here from its columns.
+    from fixtures.ai4i2020.simulate import simulate
+
+    sim = simulate(rows=30_000, seed=5)
+    for column in ("Air temperature [K]", "Process temperature [K]", "Rotational speed [rpm]",
+                   "Torque [Nm]", "Tool wear [min]"):
+        public, ours = ai4i_table[column], sim[column]
+        # A slow random walk's mean wanders: a quarter of a standard deviation.
+        assert abs(ours.mean() - public.mean()) <= 0.25 * public.std(), column
+        assert 0.75 <= ours.std() / public.std() <= 1.25, column
+    gap = sim["Process temperature [K]"] - sim["Air temperature [K]"]
+    speed = sim["Rotational speed [rpm]"]
+    power = sim["Torque [Nm]"] * speed * 2 * np.pi / 60
+    limit = sim["Type"].map({"L": 11_000, "M": 12_000, "H": 13_000})
+    assert ((gap < 8.6) & (speed < 1380)).astype(int).equals(sim["HDF"])
+    assert ((power < 3500) | (power > 9000)).astype(int).equals(sim["PWF"])
+    assert (sim["Tool wear [min]"] * sim["Torque [Nm]"] > limit).astype(int).equals(sim["OSF"])
+    # Failure rates per 10,000 runs within a factor of two of the public file's.
+    for mode in ("TWF", "HDF", "PWF", "OSF"):
+        rate, public_rate = sim[mode].mean(), ai4i_table[mode].mean()
+        assert 0.5 * public_rate <= rate <= 2.0 * public_rate, mode

@@ -75,6 +75,27 @@ def test_labels_at_the_horizon_edges_and_censoring() -> None:
     assert len(labelled_table(as_negative, built)) == 14
 
 
+def test_each_failure_is_counted_by_its_last_snapshot() -> None:
+    # Horizon 3 with a snapshot every cycle: unit a fails at 4 and at 9, so snapshots 1..3 all
+    # foresee the failure at 4 and 6..8 the one at 9 (test_repeated_failures_and_time_since).
+    # Each failure is counted once, by the last snapshot before it: 3 and 8.
+    readings = readings_for({"a": 12})
+    failures = pd.DataFrame({"unit": ["a", "a"], "cycle": [9, 4]})
+    spec = cycle_spec(down={"after_failure": 1})
+    built = build_snapshots(spec, TimelineInputs(readings, failures))
+    dataset = DatasetSpec.model_validate({
+        "name": "toy", "target": "y", "id": "id", "entity": "unit",
+        "features": [{"name": "failures_before", "role": "context"}],
+        "timeline": spec.model_dump(),
+    })
+    table = labelled_table(dataset, built).set_index("cycle")
+    positive = table[table["y"] == 1]
+    assert list(positive.index) == [1, 2, 3, 6, 7, 8]
+    assert list(positive["failure_time"]) == [4, 4, 4, 9, 9, 9]
+    assert list(positive["failure_counted"]) == [0, 0, 1, 0, 0, 1]
+    assert (table.loc[table["y"] == 0, "failure_counted"] == 0).all()
+
+
 def test_repeated_failures_and_time_since() -> None:
     # Failures at 4 and 9, readings 1..12, horizon 3, down for 1 cycle after a failure.
     readings = readings_for({"a": 12})

@@ -13,6 +13,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
 from sklearn.metrics import adjusted_rand_score
 
@@ -103,3 +104,21 @@ def test_a_sampled_fit_places_the_rest_as_a_full_fit_would(bundles, folder) -> N
     a = full.event_groups.set_index("event_id")["group_id"]
     b = sampled.event_groups.set_index("event_id")["group_id"].loc[a.index]
     assert adjusted_rand_score(a, b) >= 0.95
+
+
+def test_a_failure_foreseen_by_several_snapshots_counts_once(bundles, folder) -> None:  # type: ignore[no-untyped-def]
+    # A table built from timelines marks the last snapshot before each failure
+    # (failure_counted, tests/features/test_timeline.py); the job groups only those, so each
+    # failure is one event in the group sizes and in the events avoidable.
+    bundle = load_bundle(bundles["timeline"])
+    table = SCENARIOS["timeline"].make(FRESH_SEEDS[0], 0.1).table
+    positive = (table["went_warm_24h"] == 1) & (table["failure_counted"] == 1)
+    earlier = table[positive].sample(40, random_state=0).copy()
+    earlier["snapshot_id"] = earlier["snapshot_id"].astype(str) + "-earlier"
+    earlier["failure_counted"] = 0  # another snapshot of the same failures, seen earlier
+    path = folder / "foreseen.parquet"
+    pd.concat([table, earlier], ignore_index=True).to_parquet(path, index=False)
+    result = run_rootcause(bundle, path, folder / "foreseen", RootCauseOptions())
+    assert len(result.event_groups) == int(positive.sum())
+    assert not result.event_groups["event_id"].str.endswith("-earlier").any()
+    assert result.summary["counts"]["snapshots_before_counted_failures"] == 40
