@@ -118,12 +118,11 @@ def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
 
 
 def _build(args: argparse.Namespace) -> int:
-    from causeline.service.features.snapshots import feature_names
-    from causeline.training.build import build, timeline_of
-    from causeline.training.config import load_config
+    from causeline.training.build import build
+    from causeline.training.config import load_timeline
 
     if args.list_features:
-        for name in feature_names(timeline_of(load_config(args.config))):
+        for name in load_timeline(args.config).feature_names:
             print(name)
         return 0
     if args.out is None:

@@ -15,6 +15,7 @@ from pydantic import Field, model_validator
 from causeline.service.errors import ConfigError
 from causeline.service.spec.base import Strict, validate_model
 from causeline.service.spec.dataset import DatasetSpec, ExplainSettings
+from causeline.service.spec.timeline import TimelineSpec
 
 # LightGBM parameters a config may set; the rest are fixed so runs stay comparable.
 LIGHTGBM_KEYS = frozenset(
@@ -91,17 +92,29 @@ class TrainConfig(DatasetSpec):
 
 def load_config(path: Path) -> TrainConfig:
     """Read and validate a YAML config; errors name the file and the key."""
-    path = Path(path)
+    return validate_model(TrainConfig, _read_yaml(Path(path)), str(path))
+
+
+def load_timeline(path: Path) -> TimelineSpec:
+    """Only the ``timeline:`` section of a config, validated: enough to list the features it
+    builds before any are chosen (``features:`` may still be empty)."""
+    data = _read_yaml(Path(path))
+    section = data.get("timeline") if isinstance(data, dict) else None
+    if section is None:
+        raise ConfigError(f"{path}: the config has no timeline section")
+    return validate_model(TimelineSpec, section, str(path), at="timeline")
+
+
+def _read_yaml(path: Path) -> object:
     try:
         text = path.read_text("utf-8")
     except OSError as exc:
         raise ConfigError(f"{path}: cannot read ({exc.strerror})") from None
     try:
         # safe_load builds plain data only: no tags, so no objects, so no code.
-        data = yaml.safe_load(text)
+        return yaml.safe_load(text)
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f" line {mark.line + 1}" if mark is not None else ""
         problem = getattr(exc, "problem", exc)
         raise ConfigError(f"{path}:{where} not valid YAML ({problem})") from None
-    return validate_model(TrainConfig, data, str(path))

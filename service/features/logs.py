@@ -7,6 +7,7 @@ clock. Both the batch build and the online path read logs through these function
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -153,12 +154,50 @@ def read_inputs(dataset: DatasetSpec, paths: RawPaths) -> TimelineInputs:
             return None
         return read_table(path, text_columns=[entity] if entity else [])
 
-    return TimelineInputs(
+    if paths.events is None and not spec.failures.optional:
+        raise DataError(
+            "give the failure log (--events); without it every entity would count as never "
+            "failed and no snapshot as positive. If the timeline has no failures, say so with "
+            "failures.optional: true in the config"
+        )
+    inputs = TimelineInputs(
         readings=read(paths.readings, spec.readings.entity),  # type: ignore[arg-type]
         failures=read(paths.events, spec.failures.entity),
         actions=read(paths.actions, spec.actions.entity if spec.actions else None),
         attributes=read(paths.attributes, spec.attributes.entity if spec.attributes else None),
     )
+    check_names(spec, inputs)
+    return inputs
+
+
+def check_names(spec: TimelineSpec, inputs: TimelineInputs) -> None:
+    """Failure types and action kinds the config names must occur in the logs given: a typo
+    would otherwise drop positives or build a feature that is empty everywhere, silently."""
+    f = spec.failures
+    if f.types and f.type_column is not None and inputs.failures is not None:
+        require_columns(inputs.failures, "failures", [f.type_column])
+        _named(inputs.failures[f.type_column], f.types, "failures.types", "failure log",
+               f.type_column)
+    a = spec.actions
+    if a is not None and inputs.actions is not None:
+        require_columns(inputs.actions, "actions", [a.kind_column])
+        _named(inputs.actions[a.kind_column], a.kinds, "actions.kinds", "maintenance log",
+               a.kind_column)
+
+
+def _named(column: pd.Series, wanted: tuple[str, ...], key: str, log: str, name: str) -> None:
+    present = sorted(set(column.dropna().astype(str)))
+    for value in wanted:
+        if value in present:
+            continue
+        close = difflib.get_close_matches(value, present, n=len(present), cutoff=0.0)
+        shown = ", ".join(quoted(v, 40) for v in close[:8])
+        more = f" and {len(present) - 8} more" if len(present) > 8 else ""
+        raise DataError(
+            f"{key}: {quoted(value, 40)} never occurs in the {log}'s column {name!r}, which "
+            f"holds {shown or 'nothing'}{more} (closest first); check the spelling, or give a "
+            "log that covers it"
+        )
 
 
 def readings_log(spec: TimelineSpec, frame: pd.DataFrame, clock: Clock) -> Log:

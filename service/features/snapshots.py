@@ -45,17 +45,12 @@ FAILURE_COUNTED = "failure_counted"
 LATEST = "latest"
 
 
-def feature_names(spec: TimelineSpec) -> list[str]:
-    """The columns the builder adds, in order: what a config's ``features`` may name."""
-    return spec.feature_names
-
-
 def build_snapshots(
     spec: TimelineSpec, inputs: TimelineInputs, at: pd.Series | str | None = None
 ) -> pd.DataFrame:
     """Snapshots with their features and label status, one row per (entity, snapshot time).
 
-    Columns: the readings' entity and time columns, every feature in ``feature_names(spec)``,
+    Columns: the readings' entity and time columns, every name in ``spec.feature_names``,
     then ``snapshot_status`` (positive, negative, censored or down). ``at`` overrides the
     cadence with explicit snapshot times, or ``"latest"`` for the latest reading, for a
     single entity (the online path).

@@ -7,6 +7,7 @@ exact key, e.g. ``reason_codes[2].fix.targets: 'door_openings_per_h' is observab
 
 from __future__ import annotations
 
+import difflib
 import re
 from typing import Literal
 
@@ -134,8 +135,28 @@ class DatasetSpec(Strict):
                             f"features[{index}].expr: {used!r} is derived; "
                             "expressions read raw columns and raw features only"
                         )
+        if self.timeline is not None:
+            self._check_built(raw)
         self._check_codes(set(names))
         return self
+
+    def _check_built(self, raw: set[str]) -> None:
+        """With a timeline section, every raw feature must be a column the build makes."""
+        assert self.timeline is not None
+        built = self.timeline.feature_names
+        for index, feature in enumerate(self.features):
+            used = ([feature.source_column] if not feature.derived
+                    else sorted(parse_expression(feature.expr or "").names - raw))
+            for column in used:
+                if column in built:
+                    continue
+                close = difflib.get_close_matches(column, built, n=1, cutoff=0.6)
+                hint = f" (did you mean {close[0]!r}?)" if close else ""
+                raise ValueError(
+                    f"features[{index}]: {column!r} is not a column the timeline section "
+                    f"builds{hint}; `causeline build --config <this file> --list-features` "
+                    "prints them"
+                )
 
     def _check_codes(self, names: set[str]) -> None:
         by_feature_set: dict[tuple[str, ...], list[ReasonCode]] = {}

@@ -67,6 +67,9 @@ class FailuresInput(Strict):
     time: str
     type_column: str | None = None
     types: tuple[str, ...] = ()
+    # True: the timeline may come without a failure log (say, entities that have not failed
+    # yet); every entity then counts as never failed. A log left out by mistake is an error.
+    optional: bool = False
 
     @model_validator(mode="after")
     def _types(self) -> FailuresInput:
