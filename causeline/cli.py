@@ -118,7 +118,7 @@ def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
 
 
 def _build(args: argparse.Namespace) -> int:
-    from causeline.training.build import build
+    from causeline.training.build import build, describe_counts
     from causeline.training.config import load_timeline
 
     if args.list_features:
@@ -128,8 +128,7 @@ def _build(args: argparse.Namespace) -> int:
     if args.out is None:
         raise CauselineError("give --out (or --list-features)")
     result = build(args.config, _raw_paths(args), args.out)
-    counts = "  ".join(f"{status}: {count}" for status, count in result.counts.items())
-    print(f"snapshots: {counts}")
+    print(f"snapshots: {describe_counts(result.counts)}")
     print(f"wrote {len(result.table)} labelled snapshots -> {args.out}")
     return 0
 
@@ -156,6 +155,11 @@ def _train(args: argparse.Namespace) -> int:
         value = metrics.get(key)
         print(f"held-out {key}: {'n/a' if value is None else f'{value:.4f}'}")
     print(f"threshold: {manifest.decision.threshold:.4f} ({manifest.decision.rule})")
+    if manifest.training.get("labels"):
+        from causeline.training.build import describe_counts
+
+        print(f"snapshots: {describe_counts(manifest.training['labels'])}")
+    print(f"model card: {result.path / 'MODEL_CARD.md'}")
     return 0
 
 

@@ -44,3 +44,12 @@ def build(config_path: Path, paths: RawPaths, out: Path) -> BuildResult:
     result = build_table(config, read_inputs(config, paths))
     write_table(result.table, out)
     return result
+
+
+def describe_counts(counts: dict[str, int]) -> str:
+    """One line of snapshot counts, down ones by the rule that excluded them."""
+    down = "; ".join(f"{key.removeprefix('down: ')}: {value}" for key, value in counts.items()
+                     if key.startswith("down: ") and value)
+    main = "  ".join(f"{key}: {value}" for key, value in counts.items()
+                     if not key.startswith("down: "))
+    return main + (f" ({down})" if down else "")

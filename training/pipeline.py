@@ -30,7 +30,7 @@ from causeline.service.errors import DataError
 from causeline.service.explain.fastshap import FastTreeExplainer
 from causeline.service.explain.score import calibrate
 from causeline.service.explain.treeshap import contributions
-from causeline.service.features.builder import FeatureBuilder
+from causeline.service.features.builder import FeatureBuilder, FeatureMatrix
 from causeline.service.files.checksum import checksum_text, sha256_file
 from causeline.service.files.storage import atomic_directory
 from causeline.service.files.tables import read_table
@@ -48,7 +48,7 @@ from causeline.training.checks import (
 from causeline.training.config import TrainConfig, load_config
 from causeline.training.evaluate import held_out_metrics
 from causeline.training.fit import choose_threshold, fit_calibration, fit_trees
-from causeline.training.split import split_rows
+from causeline.training.split import Split, split_rows
 
 LIBRARIES = ("causeline", "lightgbm", "numpy", "pandas", "scikit-learn", "shap")
 
@@ -73,15 +73,20 @@ def train(config_path: Path, data_path: Path, out: Path) -> TrainResult:
 def train_timeline(config_path: Path, paths: RawPaths, out: Path) -> TrainResult:
     """Train straight from raw timelines: build the snapshot table, then as :func:`train`."""
     config = load_config(config_path)
-    table = build_table(config, read_inputs(config, paths)).table
-    manifest, model_text = fit_bundle(config, table, fingerprint=paths.fingerprint())
+    built = build_table(config, read_inputs(config, paths))
+    manifest, model_text = fit_bundle(config, built.table, paths.fingerprint(), built.counts)
     write_bundle(out, manifest, model_text)
     bundle = load_bundle(out)
     return TrainResult(path=Path(out), manifest=bundle.manifest)
 
 
-def fit_bundle(config: TrainConfig, table: pd.DataFrame, fingerprint: str) -> tuple[Manifest, str]:
-    """Everything ``train`` does short of writing files: the manifest and the text model."""
+def fit_bundle(
+    config: TrainConfig, table: pd.DataFrame, fingerprint: str,
+    snapshot_counts: dict[str, int] | None = None,
+) -> tuple[Manifest, str]:
+    """Everything ``train`` does short of writing files: the manifest and the text model.
+
+    ``snapshot_counts``: the counts of a table built from timelines, for the model card."""
     builder = FeatureBuilder(config.features, learn_categories(table, config))
     check_columns(table, config, builder)
     y = labels(table, config.target)
@@ -128,11 +133,39 @@ def fit_bundle(config: TrainConfig, table: pd.DataFrame, fingerprint: str) -> tu
             "split": split.summary(),
             "best_iteration": trees.best_iteration,
             "parameters": {k: v for k, v in trees.parameters.items() if k != "verbosity"},
+            **({"labels": snapshot_counts} if snapshot_counts else {}),
+            **_held_out(times, split, matrix, builder.categories),
         },
         data_fingerprint=fingerprint,
         libraries=_libraries(),
     )
     return manifest, trees.booster.model_to_string()
+
+
+def _held_out(times: pd.Series | None, split: Split, matrix: FeatureMatrix,
+              categories: dict[str, list[str]]) -> dict[str, object]:
+    """The held-out rows' time range, and the features whose held-out values the fit part never
+    saw (share of held-out rows outside its range, or in a category it did not hold)."""
+    out: dict[str, object] = {}
+    if times is not None and split.test.size:
+        held = times.iloc[split.test]
+        out["held_out_times"] = {"first": held.min().isoformat(), "last": held.max().isoformat()}
+    outside: dict[str, float] = {}
+    fit, test = matrix.values[split.fit], matrix.values[split.test]
+    for column, name in enumerate(matrix.names):
+        seen, new = fit[:, column], test[:, column]
+        seen, new = seen[~np.isnan(seen)], new[~np.isnan(new)]
+        if seen.size == 0 or new.size == 0:
+            continue
+        if name in categories:
+            share = float(np.mean(~np.isin(new, np.unique(seen))))
+        else:
+            share = float(np.mean((new < seen.min()) | (new > seen.max())))
+        if share >= 0.01:
+            outside[name] = round(share, 4)
+    if outside:
+        out["held_out_outside_training"] = outside
+    return out
 
 
 def _raw(booster: lgb.Booster, x: np.ndarray) -> np.ndarray:

@@ -138,6 +138,10 @@ class ModelDescription(BaseModel):
     features: list[FeatureOut]
     catalogue: list[CodeOut]
     metrics: dict[str, Any]
+    caution: str = Field(
+        default="", description="The data set's own caution, beside the general one: scores "
+        "are model estimates for qualified staff to review; local codes and licensed practice "
+        "come first where safety is involved.")
 
 
 class Liveness(BaseModel):

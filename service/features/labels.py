@@ -3,9 +3,11 @@
 The rules (also in the README of the ``timeline:`` section):
 
 - positive: a failure of a chosen type falls in ``(t, t + horizon]``;
-- down: the entity failed at f <= t and ``t - f <= down.after_failure`` (so a snapshot at the
-  failure itself is always down), or, with ``down.until_action``, no such action has been logged
-  in ``[f, t)`` yet; down snapshots are excluded;
+- down (see :func:`down_reasons`): after its latest failure f <= t the entity is down at least
+  while ``t - f <= after_failure`` (so a snapshot at the failure itself always is), then until
+  its readings resume or a repair of a kind in ``until_action`` is logged, whichever is first,
+  and never longer than ``max``; with ``stale_after``, also whenever its latest reading is older
+  than that. Down snapshots are excluded;
 - censored: no failure in the horizon and ``t + horizon`` is after the end of observation (the
   entity's last reading or last failure, whichever is later); excluded unless
   ``censored: negative`` is asked for;
@@ -53,26 +55,81 @@ class EventLog:
         return through - np.searchsorted(self.codes, codes, side="left")
 
 
+AFTER_FAILURE = "after failure"
+WAITING = "until readings resume or a repair"
+STALE = "readings missing"
+DOWN_REASONS = (AFTER_FAILURE, WAITING, STALE)
+
+
+@dataclass(frozen=True)
+class DownSpans:
+    """One down rule in clock units: minimum, cap (inf: none), and what ends it."""
+
+    after: float
+    cap: float
+    until_readings: bool
+    repairs: EventLog | None
+
+
+def down_reasons(
+    codes: np.ndarray,
+    times: np.ndarray,
+    failures: EventLog,
+    failure_rule: np.ndarray,
+    rules: list[DownSpans],
+    readings: EventLog,
+    stale: float | None,
+) -> np.ndarray:
+    """Per snapshot, why it is down (one of :data:`DOWN_REASONS`), or "" when it is not.
+
+    ``failure_rule`` gives, per failure row, the index of its rule in ``rules``.
+    """
+    position = rank(failures.codes, failures.times, codes, times, inclusive=True) - 1
+    failed_at, has_failure = failures._row(codes, position)
+    rule = np.where(has_failure, failure_rule[np.clip(position, 0, None)]
+                    if failure_rule.size else 0, 0)
+    after = np.array([r.after for r in rules])[rule]
+    cap = np.array([r.cap for r in rules])[rule]
+    by_readings = np.array([r.until_readings for r in rules])[rule]
+    elapsed = (times - failed_at).astype(np.float64)
+    minimum = has_failure & (elapsed <= after)
+    resumed_at, resumes = readings.next_after(codes, failed_at)
+    ended = by_readings & resumes & (resumed_at <= times)
+    ends = by_readings.copy()
+    for index, spans in enumerate(rules):
+        if spans.repairs is None:
+            continue
+        mine = rule == index
+        # The first repair at or after the failure; snapshots strictly after it count again.
+        repaired_at, repaired = spans.repairs._row(
+            codes, rank(spans.repairs.codes, spans.repairs.times, codes, failed_at, False))
+        ended |= mine & repaired & (repaired_at < times)
+        ends |= mine
+    waiting = has_failure & ends & ~ended & (elapsed < cap)
+    reasons = np.full(codes.size, "", dtype=object)
+    if stale is not None:
+        last, seen = readings.latest(codes, times)
+        reasons[seen & ((times - last).astype(np.float64) > stale)] = STALE
+    reasons[waiting] = WAITING
+    reasons[minimum] = AFTER_FAILURE
+    return reasons
+
+
 def label_status(
     codes: np.ndarray,
     times: np.ndarray,
     failures: EventLog,
-    repairs: EventLog | None,
     horizon: float,
-    down_after: float,
+    down: np.ndarray,
     observed_until: np.ndarray,
 ) -> np.ndarray:
     """Each snapshot's status: positive, negative, censored or down (see the module docstring).
 
-    ``observed_until`` is each snapshot's entity's end of observation.
+    ``down`` marks the snapshots :func:`down_reasons` found down; ``observed_until`` is each
+    snapshot's entity's end of observation.
     """
     upcoming, has_next = failures.next_after(codes, times)
     positive = has_next & (upcoming <= times + horizon)
-    previous, has_previous = failures.latest(codes, times)
-    down = has_previous & (times - previous <= down_after)
-    if repairs is not None:
-        repaired_at, has_repair = repairs.latest(codes, times, inclusive=False)
-        down |= has_previous & ~(has_repair & (repaired_at >= previous))
     censored = ~positive & (times + horizon > observed_until)
     status = np.full(codes.size, NEGATIVE, dtype=object)
     status[censored] = CENSORED

@@ -16,14 +16,18 @@ from causeline.service.errors import DataError
 from causeline.service.features.labels import (
     CENSORED,
     DOWN,
+    DOWN_REASONS,
     NEGATIVE,
     POSITIVE,
+    DownSpans,
     EventLog,
+    down_reasons,
     label_status,
 )
 from causeline.service.features.logs import (
     NS,
     Clock,
+    Log,
     LogValueError,
     TimelineInputs,
     event_log,
@@ -38,6 +42,7 @@ from causeline.service.spec.dataset import DatasetSpec
 from causeline.service.spec.timeline import TimelineSpec
 
 STATUS = "snapshot_status"
+DOWN_RULE = "down_rule"  # why a down snapshot is down (labels.DOWN_REASONS), else empty
 # Beside the target in the labelled table: the failure a positive snapshot foresees, and 1 on
 # the snapshot that counts it (the last before it), so the root-cause job counts it once.
 FAILURE_TIME = "failure_time"
@@ -101,7 +106,8 @@ def build_snapshots(
     out["failures_before"] = failure_log.count_through(snap_codes, snap_times)
     previous, found = failure_log.latest(snap_codes, snap_times)
     out[f"since_failure_{spec.time_suffix}"] = _since(snap_times, previous, found, clock)
-    repairs = None
+    kinds = np.empty(0, dtype=object)
+    actions = None
     if spec.actions is not None:
         # Unlike failures (none logged is an answer), missing actions would fake 'never done'.
         require_columns(inputs.actions, "actions", [spec.actions.kind_column])
@@ -113,9 +119,6 @@ def build_snapshots(
             log = EventLog(actions.codes[chosen], actions.times[chosen])
             previous, found = log.latest(snap_codes, snap_times)
             out[spec.action_feature(kind)] = _since(snap_times, previous, found, clock)
-        if spec.down.until_action:
-            chosen = np.isin(kinds, list(spec.down.until_action))
-            repairs = EventLog(actions.codes[chosen], actions.times[chosen])
     table = pd.DataFrame(out)
     if spec.attributes is not None:
         table = _join_attributes(spec, table, inputs.attributes)
@@ -128,10 +131,16 @@ def build_snapshots(
     # The end of observation: the entity's last reading or last failure, whichever is later.
     end = times[np.append(start[1:], codes.size) - 1].copy()
     np.maximum.at(end, failures.codes, failures.times)
-    table[STATUS] = label_status(
-        snap_codes, snap_times, failure_log, repairs, clock.span(spec.horizon),
-        clock.span(spec.down.after_failure), end[snap_codes],
+    reasons = down_reasons(
+        snap_codes, snap_times, failure_log, _failure_rules(spec, failures),
+        _down_spans(spec, clock, actions, kinds), EventLog(codes, times),
+        None if spec.down.stale_after is None else clock.span(spec.down.stale_after),
     )
+    table[STATUS] = label_status(
+        snap_codes, snap_times, failure_log, clock.span(spec.horizon), reasons != "",
+        end[snap_codes],
+    )
+    table[DOWN_RULE] = reasons
     # Which failure a positive snapshot foresees, so a failure foreseen by several snapshots
     # can be counted once (labelled_table marks the one that counts it).
     upcoming, _ = failure_log.next_after(snap_codes, snap_times)
@@ -144,10 +153,41 @@ def build_snapshots(
     return table
 
 
+def _failure_rules(spec: TimelineSpec, failures: Log) -> np.ndarray:
+    """Per failure row, the index of its down rule: 0 the default, then ``by_type``'s order."""
+    types = list(spec.down.by_type)
+    if not types or spec.failures.type_column is None or failures.codes.size == 0:
+        return np.zeros(failures.codes.size, dtype=np.int64)
+    kind = failures.frame[spec.failures.type_column].astype("string").to_numpy()
+    out = np.zeros(failures.codes.size, dtype=np.int64)
+    for index, name in enumerate(types, start=1):
+        out[kind == name] = index
+    return out
+
+
+def _down_spans(
+    spec: TimelineSpec, clock: Clock, actions: Log | None, kinds: np.ndarray
+) -> list[DownSpans]:
+    """The down rules in clock units, with each rule's repair log."""
+    out = []
+    for rule in spec.down.rules():
+        repairs = None
+        if rule.until_action and actions is not None:
+            chosen = np.isin(kinds, list(rule.until_action))
+            repairs = EventLog(actions.codes[chosen], actions.times[chosen])
+        cap = np.inf if rule.max is None else float(clock.span(rule.max))
+        out.append(DownSpans(float(clock.span(rule.after_failure)), cap, rule.until_readings,
+                             repairs))
+    return out
+
+
 def label_counts(table: pd.DataFrame) -> dict[str, int]:
     """How many snapshots of each status a built table holds."""
     counts = table[STATUS].value_counts()
-    return {status: int(counts.get(status, 0)) for status in (POSITIVE, NEGATIVE, CENSORED, DOWN)}
+    out = {status: int(counts.get(status, 0)) for status in (POSITIVE, NEGATIVE, CENSORED, DOWN)}
+    reasons = table[DOWN_RULE].value_counts()
+    out.update({f"down: {reason}": int(reasons.get(reason, 0)) for reason in DOWN_REASONS})
+    return out
 
 
 def labelled_table(dataset: DatasetSpec, built: pd.DataFrame) -> pd.DataFrame:
@@ -173,7 +213,7 @@ def labelled_table(dataset: DatasetSpec, built: pd.DataFrame) -> pd.DataFrame:
     table = _name_columns(dataset, table)
     failure_time = table.pop(FAILURE_TIME)
     table.insert(len(table.columns) - 1, dataset.target, positive.astype(np.int64))
-    table = table.drop(columns=[STATUS])
+    table = table.drop(columns=[STATUS, DOWN_RULE])
     table[FAILURE_TIME] = failure_time
     table[FAILURE_COUNTED] = counted
     return table
@@ -186,7 +226,7 @@ def entity_features(
     code as the batch build; give at least the readings of the look-back windows."""
     spec = timeline_of(dataset)
     built = build_snapshots(spec, inputs, at=LATEST if at is None else pd.Series([at]))
-    return _name_columns(dataset, built).drop(columns=[STATUS, FAILURE_TIME])
+    return _name_columns(dataset, built).drop(columns=[STATUS, DOWN_RULE, FAILURE_TIME])
 
 
 def snapshot_features(
@@ -198,7 +238,7 @@ def snapshot_features(
     if latest:
         entity = dataset.entity or timeline_of(dataset).readings.entity
         built = built.groupby(entity, sort=False).tail(1).reset_index(drop=True)
-    return built.drop(columns=[STATUS, FAILURE_TIME])
+    return built.drop(columns=[STATUS, DOWN_RULE, FAILURE_TIME])
 
 
 def _name_columns(dataset: DatasetSpec, table: pd.DataFrame) -> pd.DataFrame:

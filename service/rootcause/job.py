@@ -64,12 +64,10 @@ REJECTS = "rejects.csv"
 
 CAUTION = (
     "Model estimates, not a diagnosis. Groups, reason codes and events avoidable come from a "
-    "statistical model of past data; they show associations and may be wrong. Where food or "
-    "equipment safety is at stake, follow the codes and rules that apply locally and have a "
-    "licensed technician inspect the equipment before acting."
+    "statistical model of past data; they show associations and may be wrong. Where safety is "
+    "at stake, follow the codes and rules that apply locally, the equipment maker's "
+    "instructions and licensed practice, and have a qualified person inspect before acting."
 )
-
-
 STEPS = 6
 
 
@@ -206,6 +204,7 @@ def finish_rootcause(
     for position, group in enumerate(found):
         group_ids[group.label] = tracked.ids[position]
 
+    caution = " ".join(part for part in (CAUTION, bundle.spec.caution) if part)
     summary = {
         "created": datetime.now(UTC).isoformat(timespec="seconds"),
         "bundle": {"name": bundle.name, "version": bundle.version},
@@ -248,7 +247,7 @@ def finish_rootcause(
              "previous_events": g.events}
             for g in tracked.gone
         ],
-        "caution": CAUTION,
+        "caution": caution,
     }
 
     progress(f"step 6/{STEPS}: writing {out}")
@@ -259,7 +258,7 @@ def finish_rootcause(
         heatmap=_heatmap(found, tracked.ids, codes),
         weekly=weekly_frame(tally.weekly, group_ids, UNGROUPED),
         examples=_examples(found, tracked.ids, tally),
-        caution=CAUTION,
+        caution=caution,
     )
     with atomic_directory(out) as staging:
         write_table(escape_frame(groups), staging / GROUPS)

@@ -117,6 +117,9 @@ class DatasetSpec(Strict):
     features: tuple[FeatureSpec, ...] = Field(min_length=1)
     reason_codes: tuple[ReasonCode, ...] = ()
     timeline: TimelineSpec | None = None
+    # The domain's own caution, shown with every model card, report and API description after
+    # the general one (say, food safety for refrigerated cases).
+    caution: str = ""
 
     @model_validator(mode="after")
     def _cross_check(self) -> DatasetSpec:

@@ -17,7 +17,7 @@ CalendarPart = Literal["month", "weekday", "hour"]
 DURATION = re.compile(r"^(\d+(?:\.\d+)?)([smhdw])$")
 UNIT_SECONDS = {"s": 1, "m": 60, "h": 3600, "d": 86_400, "w": 604_800}
 # Columns the build adds beside the features (causeline.service.features.snapshots).
-RESERVED = ("snapshot_status", "failure_time", "failure_counted")
+RESERVED = ("snapshot_status", "down_rule", "failure_time", "failure_counted")
 
 
 def span_amount(span: str | float, clock: str) -> float:
@@ -120,16 +120,36 @@ class LookbackWindow(Strict):
         return self
 
 
-class DownRule(Strict):
-    """When an entity counts as failed or under repair, so its snapshots are excluded.
+class DownAfterFailure(Strict):
+    """How long an entity counts as down (failed or under repair) after a failure at f.
 
-    Down from a failure at f through ``f + after_failure`` (inclusive: a snapshot at the failure
-    itself is always excluded), and, when ``until_action`` names action kinds, until the first
-    such action at or after f (snapshots strictly after that action count again).
+    Down at least through ``f + after_failure`` (inclusive: a snapshot at the failure itself
+    is always down); then until its readings resume (``until_readings``: the first reading
+    after f) or an action of a kind in ``until_action`` is logged (snapshots strictly after it
+    count again), whichever comes first; never longer than ``max`` after f, when set. Down
+    snapshots are not labelled: an entity that is down cannot fail.
     """
 
     after_failure: str | float = 0.0
+    until_readings: bool = True
     until_action: tuple[str, ...] = ()
+    max: str | float | None = None
+
+
+class DownRule(DownAfterFailure):
+    """The ``down:`` section: the rule after a failure (``by_type`` per failure type where the
+    types differ), and ``stale_after``: down whenever the entity's latest reading is older than
+    this, failure or not (nothing is known of it then)."""
+
+    stale_after: str | float | None = None
+    by_type: dict[str, DownAfterFailure] = Field(default_factory=dict)
+
+    def rules(self) -> list[DownAfterFailure]:
+        """The default rule first, then one per type of ``by_type`` in its order."""
+        default = DownAfterFailure(after_failure=self.after_failure,
+                                   until_readings=self.until_readings,
+                                   until_action=self.until_action, max=self.max)
+        return [default, *self.by_type.values()]
 
 
 class TimelineSpec(Strict):
@@ -154,6 +174,12 @@ class TimelineSpec(Strict):
     @model_validator(mode="after")
     def _check(self) -> TimelineSpec:
         spans = [("horizon", self.horizon), ("down.after_failure", self.down.after_failure)]
+        spans += [(f"down.{key}", getattr(self.down, key)) for key in ("max", "stale_after")
+                  if getattr(self.down, key) is not None]
+        for kind, rule in self.down.by_type.items():
+            spans.append((f"down.by_type.{kind}.after_failure", rule.after_failure))
+            if rule.max is not None:
+                spans.append((f"down.by_type.{kind}.max", rule.max))
         spans += [(f"windows[{i}].span", w.span) for i, w in enumerate(self.windows) if w.span]
         for where, span in spans:
             try:
@@ -177,9 +203,18 @@ class TimelineSpec(Strict):
                 if name not in measured:
                     raise ValueError(f"windows[{index}]: {name!r} is not a measurement")
         kinds = set(self.actions.kinds) if self.actions else set()
-        for kind in self.down.until_action:
-            if kind not in kinds:
-                raise ValueError(f"down.until_action: {kind!r} is not one of actions.kinds")
+        for where, rule in [("down", self.down),
+                            *((f"down.by_type.{k}", r) for k, r in self.down.by_type.items())]:
+            for kind in rule.until_action:
+                if kind not in kinds:
+                    raise ValueError(f"{where}.until_action: {kind!r} is not one of "
+                                     f"actions.kinds ({', '.join(sorted(kinds)) or 'none'})")
+        for kind in self.down.by_type:
+            if self.failures.types and kind not in self.failures.types:
+                raise ValueError(f"down.by_type: {kind!r} is not one of failures.types "
+                                 f"({', '.join(self.failures.types)})")
+            if self.failures.type_column is None:
+                raise ValueError("down.by_type needs failures.type_column")
         names = self.feature_names
         for name in names:
             if not re.match(NAME_PATTERN, name):

@@ -45,9 +45,12 @@ CONFIG = load_config(FOLDER / "config.yaml")
 def bundle(tmp_path_factory: pytest.TempPathFactory) -> Bundle:
     train = prepare.readings("train")
     result = build_table(CONFIG, TimelineInputs(train, prepare.failures(train)))
-    # Each of the 100 engines: 30 positive snapshots before its failure, the failure cycle down.
+    # Each of the 100 engines: 30 positive snapshots before its failure, the failure cycle down
+    # (by the rule's minimum: a snapshot at the failure itself).
     assert result.counts == {"positive": 3000, "negative": len(train) - 3100, "censored": 0,
-                             "down": 100}
+                             "down": 100, "down: after failure": 100,
+                             "down: until readings resume or a repair": 0,
+                             "down: readings missing": 0}
     manifest, model = fit_bundle(CONFIG, result.table, fingerprint="0" * 64)
     out = tmp_path_factory.mktemp("cmapss") / "bundle"
     write_bundle(out, manifest, model)

@@ -18,6 +18,7 @@ from causeline.service.features.snapshots import (
     STATUS,
     build_snapshots,
     entity_features,
+    label_counts,
     labelled_table,
 )
 from causeline.service.spec.base import validate_model
@@ -113,9 +114,10 @@ def test_repeated_failures_and_time_since() -> None:
 
 def test_maintenance_just_before_a_failure_and_repair_ends_down_time() -> None:
     # Readings every hour 00:00..23:00; a coil cleaning at 09:59, a failure at 10:00 and the
-    # repair at 14:30. Down lasts until the repair: snapshots 10:00..14:00 are excluded, and
-    # 15:00 counts again. The cleaning one minute before the failure is not a repair kind, so
-    # it neither ends the down time nor hides the failure from the 09:00 snapshot.
+    # repair at 14:30. With until_readings off, down lasts until the repair: snapshots
+    # 10:00..14:00 are excluded, and 15:00 counts again. The cleaning one minute before the
+    # failure is not a repair kind, so it neither ends the down time nor hides the failure from
+    # the 09:00 snapshot.
     spec = TimelineSpec.model_validate({
         "readings": {"entity": "case", "time": "time", "measurements": ["x"]},
         "failures": {"entity": "case", "time": "time"},
@@ -123,7 +125,7 @@ def test_maintenance_just_before_a_failure_and_repair_ends_down_time() -> None:
                     "kinds": ["Coil cleaning", "repair"]},
         "horizon": "2h",
         "unit": "m",
-        "down": {"until_action": ["repair"]},
+        "down": {"until_action": ["repair"], "until_readings": False},
     })
     times = pd.date_range("2025-03-01", periods=24, freq="h")
     readings = pd.DataFrame({"case": "c1", "time": times, "x": np.arange(24.0)})
@@ -374,3 +376,106 @@ def test_an_infinite_cycle_is_refused() -> None:
     # A number is a fine snapshot time on a cycle clock.
     built = build_snapshots(cycle_spec(), TimelineInputs(readings, None), at=pd.Series([3]))
     assert built["cycle"].tolist() == [3]
+
+
+def _hourly_down(down: dict, readings_hours: list[int], failures: list[tuple[int, str]],
+                 actions: list[tuple[int, str]] = ()) -> pd.Series:  # type: ignore[assignment]
+    """Status by hour for one pump: snapshots every hour 0..47, readings at the given hours."""
+    start = pd.Timestamp("2025-05-01")
+    spec = TimelineSpec.model_validate({
+        "readings": {"entity": "pump", "time": "time", "measurements": ["flow"]},
+        "failures": {"entity": "pump", "time": "time", "type_column": "type",
+                     "types": ["trip", "seal"]},
+        "actions": {"entity": "pump", "time": "time", "kind_column": "kind",
+                    "kinds": ["repair", "reset"]},
+        "snapshots": {"every": "1h"},
+        "horizon": "2h",
+        "down": down,
+    })
+    readings = pd.DataFrame({"pump": "p1", "time": [start + pd.Timedelta(hours=h)
+                                                     for h in readings_hours],
+                             "flow": 1.0})
+    failures = pd.DataFrame({"pump": "p1", "time": [start + pd.Timedelta(hours=h)
+                                                     for h, _ in failures],
+                             "type": [k for _, k in failures]})
+    actions_frame = pd.DataFrame({"pump": "p1", "time": [start + pd.Timedelta(hours=h)
+                                                          for h, _ in actions],
+                                  "kind": [k for _, k in actions]})
+    built = build_snapshots(spec, TimelineInputs(readings, failures, actions_frame))
+    hours = ((built["time"] - start) / pd.Timedelta(hours=1)).astype(int)
+    return pd.Series(built[STATUS].to_numpy(), index=hours)
+
+
+def _down_hours(status: pd.Series) -> list[int]:
+    return [int(h) for h in status.index[status == "down"]]
+
+
+# Worked by hand: readings every hour but 11..30 (the pump is off for repair), a trip at 10.
+GAP = [h for h in range(48) if not 11 <= h <= 30]
+
+
+def test_down_until_readings_resume_by_default() -> None:
+    # Default rule: down from the failure at 10 until the first reading after it, at 31.
+    status = _hourly_down({}, GAP, [(10, "trip")])
+    assert _down_hours(status) == list(range(10, 31))
+    assert status[8] == "positive" and status[9] == "positive" and status[31] == "negative"
+
+
+def test_a_repair_before_readings_resume_ends_down_time_first() -> None:
+    # Repair logged at 20:00: snapshots strictly after it count again, whichever comes first.
+    status = _hourly_down({"until_action": ["repair"]}, GAP, [(10, "trip")], [(20, "repair")])
+    assert _down_hours(status) == list(range(10, 21))
+
+
+def test_max_caps_down_time_and_after_failure_is_a_minimum() -> None:
+    capped = _hourly_down({"max": "6h"}, GAP, [(10, "trip")])
+    assert _down_hours(capped) == list(range(10, 16))  # t - f < 6 h
+    # Readings never stop here, so without a minimum only the failure hour would be down.
+    status = _hourly_down({"after_failure": "3h"}, list(range(48)), [(10, "trip")])
+    assert _down_hours(status) == [10, 11, 12, 13]  # t - f <= 3 h
+
+
+def test_down_while_readings_are_missing_without_any_failure() -> None:
+    # No failure: with stale_after 4h, the hours whose latest reading (10:00) is more than 4 h
+    # old are down: 15..30.
+    status = _hourly_down({"stale_after": "4h"}, GAP, [])
+    assert _down_hours(status) == list(range(15, 31))
+    assert "down" not in set(_hourly_down({}, GAP, []))
+
+
+def test_a_rule_per_failure_type() -> None:
+    # Trips reset in an hour (down 1 h at least, then until a reset); seals wait for a repair.
+    down = {"until_readings": False, "until_action": ["repair"],
+            "by_type": {"trip": {"after_failure": "1h", "until_readings": False,
+                                 "until_action": ["reset"]}}}
+    status = _hourly_down(down, list(range(48)), [(5, "trip"), (20, "seal")],
+                          [(6, "reset"), (30, "repair")])
+    assert _down_hours(status) == [5, 6, *range(20, 31)]
+
+
+def test_build_counts_snapshots_per_down_rule() -> None:
+    spec = TimelineSpec.model_validate({
+        "readings": {"entity": "pump", "time": "time", "measurements": ["flow"]},
+        "failures": {"entity": "pump", "time": "time"},
+        "snapshots": {"every": "1h"}, "horizon": "2h",
+        "down": {"after_failure": "2h", "stale_after": "4h"},
+    })
+    start = pd.Timestamp("2025-05-01")
+    readings = pd.DataFrame({"pump": "p1", "time": [start + pd.Timedelta(hours=h) for h in GAP],
+                             "flow": 1.0})
+    failures = pd.DataFrame({"pump": ["p1"], "time": [start + pd.Timedelta(hours=40)]})
+    counts = label_counts(build_snapshots(spec, TimelineInputs(readings, failures)))
+    # 15..30 readings missing (16); 40..42 after the failure (3: 40 to 42 inclusive).
+    assert counts["down: readings missing"] == 16
+    assert counts["down: after failure"] == 3
+    assert counts["down"] == 19
+
+
+def test_down_rules_name_their_keys_when_wrong() -> None:
+    base = {"readings": {"entity": "e", "time": "t", "measurements": ["x"]},
+            "failures": {"entity": "e", "time": "t", "type_column": "k", "types": ["trip"]},
+            "horizon": "1h"}
+    with pytest.raises(ConfigError, match=r"down.by_type: 'seal' is not one of failures.types"):
+        validate_model(TimelineSpec, {**base, "down": {"by_type": {"seal": {}}}}, "c")
+    with pytest.raises(ConfigError, match=r"down.max: 'soon'"):
+        validate_model(TimelineSpec, {**base, "down": {"max": "soon"}}, "c")

@@ -75,4 +75,5 @@ def describe(model: Model, schema: EventSchema) -> ModelDescription:
         threshold=manifest.decision.threshold, decision_rule=manifest.decision.rule,
         fields=FieldsOut(required=schema.required, optional=schema.optional),
         features=features, catalogue=catalogue, metrics=manifest.metrics,
+        caution=manifest.dataset.caution,
     )
