@@ -53,7 +53,12 @@ def _parser() -> argparse.ArgumentParser:
     _raw_arguments(explain, "instead of --input, for a bundle built from timelines: ")
     explain.add_argument(
         "--latest", action="store_true",
-        help="with raw logs: only each entity's latest snapshot (score the fleet now)",
+        help="with raw logs: score each entity once, now (its latest reading or failure, "
+        "whichever is later); entities down then are listed in <out>.down.csv, not scored",
+    )
+    explain.add_argument(
+        "--as-of", metavar="TIME",
+        help="with raw logs: score each entity once, at this time (implies --latest)",
     )
     explain.add_argument(
         "--all-contributions",
@@ -180,7 +185,7 @@ def _explain(args: argparse.Namespace) -> int:
     else:
         totals = explain_file(
             bundle, args.out, args.input, _raw_paths(args) if _has_raw_logs(args) else None,
-            args.top, args.all_contributions, args.latest,
+            args.top, args.all_contributions, args.latest, args.as_of,
         )
     print(f"explained: {totals.rows} events, {totals.flagged} at or above the threshold -> "
           f"{args.out}")
@@ -192,6 +197,10 @@ def _explain(args: argparse.Namespace) -> int:
             print(f"  {code:<28} {count:>7}  {100 * count / totals.flagged:5.1f} %")
     if totals.rejected:
         print(f"rejected: {totals.rejected} unreadable rows -> {rejects_path(args.out)}")
+    if args.latest or args.as_of:
+        from causeline.service.explain.job import down_path
+
+        print(f"down (not scored): {totals.down} entities -> {down_path(args.out)}")
     return 0
 
 

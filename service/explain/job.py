@@ -22,7 +22,7 @@ from causeline.service.errors import CauselineError
 from causeline.service.explain.explainer import Explainer, Explanation
 from causeline.service.explain.records import explanation_frame, explanation_records
 from causeline.service.features.logs import RawPaths, read_inputs
-from causeline.service.features.snapshots import snapshot_features
+from causeline.service.features.snapshots import current_features, snapshot_features
 from causeline.service.files.rejects import (
     Lenient,
     empty_rejects,
@@ -44,6 +44,7 @@ class ExplainTotals:
     warned: int = 0
     leading: Counter[str] = field(default_factory=Counter)
     rejected: int = 0
+    down: int = 0  # entities down at the moment scored, set apart (``--latest``)
 
     def add(self, explanation: Explanation) -> None:
         """Count one explained table: events, flagged ones, warnings and leading codes."""
@@ -79,18 +80,29 @@ def explain_file(
     top: int | None = None,
     all_contributions: bool = False,
     latest: bool = False,
+    as_of: str | None = None,
 ) -> ExplainTotals:
     """Explain a table file, or the snapshots built from raw logs, into ``out``.
 
     Raw logs go through the same build as ``causeline build``, so scores match training's
-    features exactly; ``latest`` keeps each entity's latest snapshot only.
+    features exactly. ``latest`` scores each entity once, at the latest moment its logs know of
+    (or at ``as_of``); entities that are down then are not scored but listed in
+    ``<out stem>.down.csv`` (:func:`down_path`).
     """
     out = Path(out)
     kind = table_format(out)
     if (table_path is None) == (raw is None):
         raise CauselineError("give either --input or the raw logs (--readings, --events, ...)")
+    if (latest or as_of is not None) and raw is None:
+        raise CauselineError("--latest and --as-of need the raw logs (--readings, ...)")
+    down = None
     if raw is not None:
-        table = snapshot_features(bundle.spec, read_inputs(bundle.spec, raw), latest=latest)
+        inputs = read_inputs(bundle.spec, raw)
+        if latest or as_of is not None:
+            current = current_features(bundle.spec, inputs, as_of)
+            table, down = current.table, current.down
+        else:
+            table = snapshot_features(bundle.spec, inputs)
         read = Lenient(table, np.arange(1, len(table) + 1), empty_rejects(table.columns))
     else:
         assert table_path is not None
@@ -106,5 +118,18 @@ def explain_file(
         write_table(output, out)
     write_rejects(read.rejects, rejects_path(out))
     totals = ExplainTotals(rejected=len(read.rejects))
+    if down is not None:
+        write_table(escape_frame(down), down_path(out))
+        totals.down = len(down)
     totals.add(explanation)
     return totals
+
+
+def down_path(out: Path) -> Path:
+    """Where ``--latest`` lists the entities it did not score: ``scores.csv`` ->
+    ``scores.down.csv``."""
+    out = Path(out)
+    name = out.name
+    for suffix in (".gz", ".csv", ".jsonl", ".parquet"):
+        name = name.removesuffix(suffix)
+    return out.with_name(f"{name}.down.csv")

@@ -9,6 +9,8 @@ timestamp <= t (the tests probe every builder for look-ahead leakage). Logs are 
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 
@@ -48,17 +50,22 @@ DOWN_RULE = "down_rule"  # why a down snapshot is down (labels.DOWN_REASONS), el
 FAILURE_TIME = "failure_time"
 FAILURE_COUNTED = "failure_counted"
 LATEST = "latest"
+NOW = "now"
 
 
 def build_snapshots(
-    spec: TimelineSpec, inputs: TimelineInputs, at: pd.Series | str | None = None
+    spec: TimelineSpec, inputs: TimelineInputs, at: pd.Series | str | None = None,
+    as_of: object | None = None,
 ) -> pd.DataFrame:
     """Snapshots with their features and label status, one row per (entity, snapshot time).
 
     Columns: the readings' entity and time columns, every name in ``spec.feature_names``,
     then ``snapshot_status`` (positive, negative, censored or down). ``at`` overrides the
     cadence with explicit snapshot times, or ``"latest"`` for the latest reading, for a
-    single entity (the online path).
+    single entity (the online path); ``"now"`` gives every entity one snapshot at the latest
+    moment its logs know of (its latest reading or failure, whichever is later), or at
+    ``as_of`` for every entity with a reading by then; a snapshot after a failure the entity
+    has not come back from is ``down``.
     """
     clock = Clock(spec)
     readings = readings_log(spec, inputs.readings, clock)
@@ -70,7 +77,11 @@ def build_snapshots(
     frame = readings.frame.iloc[order].reset_index(drop=True)
     start = np.searchsorted(codes, np.arange(names.size), side="left")
 
-    if at is not None:
+    failures = event_log(spec.failures.entity, spec.failures.time, inputs.failures, "failures",
+                         names, clock, failure_filter(spec))
+    if isinstance(at, str) and at == NOW:
+        snap_codes, snap_times = _now(clock, codes, times, start, failures, as_of)
+    elif at is not None:
         if names.size != 1:
             listed = ", ".join(shown(name) for name in names[:3])
             raise LogValueError(
@@ -100,8 +111,6 @@ def build_snapshots(
         values = frame[state].to_numpy(dtype=object)[np.maximum(latest, 0)]
         out[state] = pd.Series(np.where(found, values, None), dtype=frame[state].dtype)
 
-    failures = event_log(spec.failures.entity, spec.failures.time, inputs.failures, "failures",
-                       names, clock, failure_filter(spec))
     failure_log = EventLog(failures.codes, failures.times)
     out["failures_before"] = failure_log.count_through(snap_codes, snap_times)
     previous, found = failure_log.latest(snap_codes, snap_times)
@@ -151,6 +160,22 @@ def build_snapshots(
         missing = np.iinfo(np.int64).min  # NaT
         table[FAILURE_TIME] = np.where(positive, upcoming, missing).view("datetime64[ns]")
     return table
+
+
+def _now(
+    clock: Clock, codes: np.ndarray, times: np.ndarray, start: np.ndarray, failures: Log,
+    as_of: object | None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """One snapshot per entity: at ``as_of`` for those with a reading by then, else at the
+    latest moment the logs know of, its latest reading or failure, whichever is later."""
+    last = times[np.append(start[1:], codes.size) - 1].copy()
+    entities = np.arange(start.size)
+    if as_of is not None:
+        moment = clock.values(pd.Series([as_of]), "at", "--as-of")[0]
+        seen = times[start] <= moment
+        return entities[seen], np.full(int(seen.sum()), moment, dtype=times.dtype)
+    np.maximum.at(last, failures.codes, failures.times)
+    return entities, last
 
 
 def _failure_rules(spec: TimelineSpec, failures: Log) -> np.ndarray:
@@ -229,16 +254,35 @@ def entity_features(
     return _name_columns(dataset, built).drop(columns=[STATUS, DOWN_RULE, FAILURE_TIME])
 
 
-def snapshot_features(
-    dataset: DatasetSpec, inputs: TimelineInputs, latest: bool = False
-) -> pd.DataFrame:
-    """Every snapshot the cadence gives (or each entity's latest), named as the spec says, for
-    scoring: down and censored snapshots too, since scoring needs no label."""
+def snapshot_features(dataset: DatasetSpec, inputs: TimelineInputs) -> pd.DataFrame:
+    """Every snapshot the cadence gives, named as the spec says, for scoring: down and censored
+    snapshots too, since scoring needs no label."""
     built = _name_columns(dataset, build_snapshots(timeline_of(dataset), inputs))
-    if latest:
-        entity = dataset.entity or timeline_of(dataset).readings.entity
-        built = built.groupby(entity, sort=False).tail(1).reset_index(drop=True)
     return built.drop(columns=[STATUS, DOWN_RULE, FAILURE_TIME])
+
+
+@dataclass(frozen=True)
+class Current:
+    """The fleet now: a feature row per entity that is up, and the entities that are down."""
+
+    table: pd.DataFrame
+    down: pd.DataFrame  # entity, snapshot time, why it is down
+
+
+def current_features(
+    dataset: DatasetSpec, inputs: TimelineInputs, as_of: object | None = None
+) -> Current:
+    """Each entity at the latest moment its logs know of (or ``as_of``), built with the same
+    look-back windows as training, only those snapshots: scoring the fleet now costs a pass
+    over the logs, not the year's snapshots. Entities down then (a failure they have not
+    come back from, by the config's down rules) are set apart, not scored."""
+    built = _name_columns(dataset, build_snapshots(timeline_of(dataset), inputs, NOW, as_of))
+    down = (built[STATUS] == DOWN).to_numpy()
+    entity = dataset.entity or timeline_of(dataset).readings.entity
+    time = dataset.time or timeline_of(dataset).readings.time
+    apart = built.loc[down, [entity, time, DOWN_RULE]].reset_index(drop=True)
+    table = built[~down].reset_index(drop=True).drop(columns=[STATUS, DOWN_RULE, FAILURE_TIME])
+    return Current(table, apart)
 
 
 def _name_columns(dataset: DatasetSpec, table: pd.DataFrame) -> pd.DataFrame:

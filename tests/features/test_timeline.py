@@ -17,6 +17,7 @@ from causeline.service.features.logs import TimelineInputs
 from causeline.service.features.snapshots import (
     STATUS,
     build_snapshots,
+    current_features,
     entity_features,
     label_counts,
     labelled_table,
@@ -479,3 +480,40 @@ def test_down_rules_name_their_keys_when_wrong() -> None:
         validate_model(TimelineSpec, {**base, "down": {"by_type": {"seal": {}}}}, "c")
     with pytest.raises(ConfigError, match=r"down.max: 'soon'"):
         validate_model(TimelineSpec, {**base, "down": {"max": "soon"}}, "c")
+
+
+def test_now_is_each_entity_latest_known_moment() -> None:
+    # Three pumps, readings every hour. p1 reads until 20:00 and never fails: scored at 20:00.
+    # p2 reads until 14:00 and trips at 16:00, after its last reading: down, not scored.
+    # p3 trips at 10:00 and reads again from 12:00 to 20:00: back up, scored at 20:00.
+    start = pd.Timestamp("2025-05-01")
+    hours = {"p1": range(0, 21), "p2": range(0, 15), "p3": [*range(0, 10), *range(12, 21)]}
+    readings = pd.DataFrame([(pump, start + pd.Timedelta(hours=h), float(h))
+                             for pump, hs in hours.items() for h in hs],
+                            columns=["pump", "time", "flow"])
+    failures = pd.DataFrame({"pump": ["p2", "p3"],
+                             "time": [start + pd.Timedelta(hours=16),
+                                      start + pd.Timedelta(hours=10)]})
+    dataset = DatasetSpec.model_validate({
+        "name": "pumps", "target": "y", "id": "id", "entity": "pump", "time": "time",
+        "features": [{"name": "flow__mean_4h", "role": "observable"},
+                     {"name": "failures_before", "role": "context"}],
+        "timeline": {"readings": {"entity": "pump", "time": "time", "measurements": ["flow"]},
+                     "failures": {"entity": "pump", "time": "time"},
+                     "snapshots": {"every": "1h"}, "horizon": "2h",
+                     "windows": [{"span": "4h", "aggregations": ["mean"]}]},
+    })
+    inputs = TimelineInputs(readings, failures)
+    now = current_features(dataset, inputs)
+    assert list(now.table["pump"]) == ["p1", "p3"]
+    assert list(now.table["time"]) == [start + pd.Timedelta(hours=20)] * 2
+    assert list(now.down["pump"]) == ["p2"]
+    assert list(now.down["time"]) == [start + pd.Timedelta(hours=16)]
+    # The same windows as training: the row equals the cadence build's row at 20:00.
+    built = build_snapshots(dataset.timeline, inputs)  # type: ignore[arg-type]
+    at_20 = built[built["time"] == start + pd.Timedelta(hours=20)].set_index("pump")
+    assert now.table.set_index("pump")["flow__mean_4h"].to_dict() == (
+        at_20["flow__mean_4h"].to_dict())
+    # As of 12:30 every pump with a reading by then is scored; p2's trip is still ahead.
+    then = current_features(dataset, inputs, as_of="2025-05-01T12:30:00")
+    assert list(then.table["pump"]) == ["p1", "p2", "p3"] and len(then.down) == 0
