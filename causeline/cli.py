@@ -104,22 +104,27 @@ def _parser() -> argparse.ArgumentParser:
 
 def _raw_arguments(parser: argparse.ArgumentParser, prefix: str) -> None:
     parser.add_argument("--readings", type=Path, help=prefix + "raw readings log")
-    parser.add_argument("--events", type=Path, help=prefix + "failure (event) log")
+    parser.add_argument("--failures", type=Path, help=prefix + "failure log")
+    # --events names the events to group in rootcause; here it once meant the failure log.
+    parser.add_argument("--events", type=Path, dest="old_events", help=argparse.SUPPRESS)
     parser.add_argument("--actions", type=Path, help=prefix + "maintenance log")
     parser.add_argument("--attributes", type=Path, help=prefix + "static attributes per entity")
 
 
 def _has_raw_logs(args: argparse.Namespace) -> bool:
-    logs = ("readings", "events", "actions", "attributes")
+    logs = ("readings", "failures", "old_events", "actions", "attributes")
     return any(getattr(args, name, None) is not None for name in logs)
 
 
 def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
     from causeline.service.features.logs import RawPaths
 
+    if getattr(args, "old_events", None) is not None:
+        raise CauselineError("the failure log is given with --failures (--events names the "
+                             "events to group in causeline rootcause)")
     if args.readings is None:
-        raise CauselineError("give --readings (and --events, maybe --actions, --attributes)")
-    return RawPaths(args.readings, args.events, args.actions, args.attributes)
+        raise CauselineError("give --readings (and --failures, maybe --actions, --attributes)")
+    return RawPaths(args.readings, args.failures, args.actions, args.attributes)
 
 
 def _build(args: argparse.Namespace) -> int:
@@ -143,7 +148,7 @@ def _train(args: argparse.Namespace) -> int:
 
     raw = _has_raw_logs(args)
     if (args.data is None) == (not raw):
-        raise CauselineError("give either --data or the raw logs (--readings, --events, ...)")
+        raise CauselineError("give either --data or the raw logs (--readings, --failures, ...)")
     if raw:
         result = train_timeline(args.config, _raw_paths(args), args.out)
     else:

@@ -92,7 +92,7 @@ def explain_file(
     out = Path(out)
     kind = table_format(out)
     if (table_path is None) == (raw is None):
-        raise CauselineError("give either --input or the raw logs (--readings, --events, ...)")
+        raise CauselineError("give either --input or the raw logs (--readings, --failures, ...)")
     if (latest or as_of is not None) and raw is None:
         raise CauselineError("--latest and --as-of need the raw logs (--readings, ...)")
     down = None

@@ -123,14 +123,14 @@ class RawPaths:
     """The raw logs on disk; only the readings are always needed."""
 
     readings: Path
-    events: Path | None = None
+    failures: Path | None = None
     actions: Path | None = None
     attributes: Path | None = None
 
     def fingerprint(self) -> str:
         """One sha256 over the files' own checksums, in a fixed order."""
         parts = [sha256_file(p) if p else "-" for p in
-                 (self.readings, self.events, self.actions, self.attributes)]
+                 (self.readings, self.failures, self.actions, self.attributes)]
         return hashlib.sha256("\n".join(parts).encode()).hexdigest()
 
 
@@ -154,15 +154,15 @@ def read_inputs(dataset: DatasetSpec, paths: RawPaths) -> TimelineInputs:
             return None
         return read_table(path, text_columns=[entity] if entity else [])
 
-    if paths.events is None and not spec.failures.optional:
+    if paths.failures is None and not spec.failures.optional:
         raise DataError(
-            "give the failure log (--events); without it every entity would count as never "
+            "give the failure log (--failures); without it every entity would count as never "
             "failed and no snapshot as positive. If the timeline has no failures, say so with "
             "failures.optional: true in the config"
         )
     inputs = TimelineInputs(
         readings=read(paths.readings, spec.readings.entity),  # type: ignore[arg-type]
-        failures=read(paths.events, spec.failures.entity),
+        failures=read(paths.failures, spec.failures.entity),
         actions=read(paths.actions, spec.actions.entity if spec.actions else None),
         attributes=read(paths.attributes, spec.attributes.entity if spec.attributes else None),
     )

@@ -127,7 +127,7 @@ def test_explain_from_raw_logs_equals_explain_of_the_built_table(built, tmp_path
 
     logs, snapshots, bundle_path = built
     paths = []
-    for flag, name in (("--readings", "readings"), ("--events", "excursions"),
+    for flag, name in (("--readings", "readings"), ("--failures", "excursions"),
                        ("--actions", "maintenance"), ("--attributes", "cases")):
         path = tmp_path / f"{name}.parquet"
         getattr(logs, name).to_parquet(path, index=False)

@@ -58,7 +58,7 @@ def test_build_command_writes_a_table_train_reads(tmp_path: Path, capsys) -> Non
     out = tmp_path / "snapshots.csv"
     status = causeline([
         "build", "--config", str(CONFIG), "--readings", str(paths["readings"]),
-        "--events", str(paths["excursions"]), "--actions", str(paths["maintenance"]),
+        "--failures", str(paths["excursions"]), "--actions", str(paths["maintenance"]),
         "--attributes", str(paths["cases"]), "--out", str(out),
     ])
     assert status == 0

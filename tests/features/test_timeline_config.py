@@ -35,7 +35,7 @@ def config_with(tmp_path: Path, change) -> Path:  # type: ignore[no-untyped-def]
 
 
 def build(config: Path, logs: Path, tmp_path: Path, capsys, *skip: str) -> tuple[int, str]:  # type: ignore[no-untyped-def]
-    flags = {"--readings": "readings", "--events": "excursions", "--actions": "maintenance",
+    flags = {"--readings": "readings", "--failures": "excursions", "--actions": "maintenance",
              "--attributes": "cases"}
     args = ["build", "--config", str(config), "--out", str(tmp_path / "snapshots.parquet")]
     for flag, name in flags.items():
@@ -73,11 +73,11 @@ def test_an_action_kind_that_never_occurs_is_an_error(logs, tmp_path, capsys) ->
 def test_a_missing_failure_log_is_an_error_unless_the_config_says_none(  # type: ignore[no-untyped-def]
     logs, tmp_path, capsys
 ) -> None:
-    code, err = build(CONFIG, logs, tmp_path, capsys, "--events")
-    assert code == 2 and "give the failure log (--events)" in err
+    code, err = build(CONFIG, logs, tmp_path, capsys, "--failures")
+    assert code == 2 and "give the failure log (--failures)" in err
     assert "failures.optional: true" in err
     optional = config_with(tmp_path, lambda d: d["timeline"]["failures"].update(optional=True))
-    assert build(optional, logs, tmp_path, capsys, "--events")[0] == 0
+    assert build(optional, logs, tmp_path, capsys, "--failures")[0] == 0
 
 
 def test_a_misspelt_built_feature_suggests_the_name(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
@@ -112,3 +112,11 @@ def test_list_features_works_before_any_feature_is_chosen(tmp_path, capsys) -> N
     assert main(["build", "--config", str(config), "--list-features"]) == 0
     names = capsys.readouterr().out.split()
     assert "suction_pressure_kpa__mean_24h" in names and "failures_before" in names
+
+
+def test_the_failure_log_flag_has_one_name(logs, tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    # --events names the events rootcause groups; the failure log is --failures everywhere.
+    code = main(["build", "--config", str(CONFIG), "--readings", str(logs / "readings.parquet"),
+                 "--events", str(logs / "excursions.parquet"), "--out", str(tmp_path / "x.csv")])
+    assert code == 2
+    assert "the failure log is given with --failures" in capsys.readouterr().err
