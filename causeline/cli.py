@@ -71,9 +71,11 @@ def _parser() -> argparse.ArgumentParser:
     rootcause = commands.add_parser("rootcause", help="group events into root-cause groups")
     rootcause.add_argument("--bundle", required=True, type=Path, help="a trained bundle folder")
     rootcause.add_argument(
-        "--events", required=True, type=Path,
+        "--events", type=Path,
         help="CSV, JSONL or Parquet table, or a prediction-log folder (needs --predicted)",
     )
+    _raw_arguments(rootcause, "instead of --events, for a bundle built from timelines: ",
+                   events=False)
     rootcause.add_argument("--out", required=True, type=Path, help="output folder")
     rootcause.add_argument(
         "--predicted", action="store_true",
@@ -102,11 +104,11 @@ def _parser() -> argparse.ArgumentParser:
     return parser
 
 
-def _raw_arguments(parser: argparse.ArgumentParser, prefix: str) -> None:
+def _raw_arguments(parser: argparse.ArgumentParser, prefix: str, events: bool = True) -> None:
     parser.add_argument("--readings", type=Path, help=prefix + "raw readings log")
     parser.add_argument("--failures", type=Path, help=prefix + "failure log")
-    # --events names the events to group in rootcause; here it once meant the failure log.
-    parser.add_argument("--events", type=Path, dest="old_events", help=argparse.SUPPRESS)
+    if events:  # --events names the events rootcause groups; it once meant the failure log
+        parser.add_argument("--events", type=Path, dest="old_events", help=argparse.SUPPRESS)
     parser.add_argument("--actions", type=Path, help=prefix + "maintenance log")
     parser.add_argument("--attributes", type=Path, help=prefix + "static attributes per entity")
 
@@ -218,8 +220,15 @@ def _rootcause(args: argparse.Namespace) -> int:
         predicted=args.predicted, since=args.since, until=args.until,
         previous=args.previous, min_group_size=args.min_group_size, fit_sample=args.fit_sample,
     )
+    if (args.events is None) == (not _has_raw_logs(args)):
+        raise CauselineError("give either --events or the raw logs (--readings, --failures, ...)")
+    source = args.events if args.events is not None else _raw_paths(args)
     if _use_dask(args):
         from causeline.service.dask.rootcause import run_rootcause_dask
+
+        if args.events is None:
+            raise CauselineError("the dask engine reads --events tables; for raw logs use "
+                                 "--engine local, or causeline build first")
 
         result = run_rootcause_dask(
             load_bundle(args.bundle), args.events, args.out, options, _dask_settings(args),
@@ -227,7 +236,7 @@ def _rootcause(args: argparse.Namespace) -> int:
         )
     else:
         result = run_rootcause(
-            load_bundle(args.bundle), args.events, args.out, options, progress=_progress
+            load_bundle(args.bundle), source, args.out, options, progress=_progress
         )
     counts = result.summary["counts"]
     print(

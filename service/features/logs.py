@@ -127,6 +127,12 @@ class RawPaths:
     actions: Path | None = None
     attributes: Path | None = None
 
+    def __str__(self) -> str:
+        """The logs as a message names them."""
+        given = [(name, getattr(self, name)) for name in
+                 ("readings", "failures", "actions", "attributes")]
+        return "raw logs (" + ", ".join(f"{k} {v}" for k, v in given if v is not None) + ")"
+
     def fingerprint(self) -> str:
         """One sha256 over the files' own checksums, in a fixed order."""
         parts = [sha256_file(p) if p else "-" for p in

@@ -18,7 +18,12 @@ import pandas as pd
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import DataError
 from causeline.service.explain.score import probability
-from causeline.service.features.snapshots import FAILURE_COUNTED
+from causeline.service.features.logs import RawPaths, read_inputs
+from causeline.service.features.snapshots import (
+    FAILURE_COUNTED,
+    build_snapshots,
+    labelled_table,
+)
 from causeline.service.files.predlog import is_prediction_log, read_prediction_log
 from causeline.service.files.rejects import (
     add_rejects,
@@ -82,6 +87,22 @@ def read_events(bundle: Bundle, path: Path) -> EventInput:
     if spec.id not in read.table.columns:
         raise DataError(f"{path}: no id column {spec.id!r}")
     return EventInput(read.table, spec.id, spec.time, False, read.rows, read.rejects)
+
+
+def events_from_logs(bundle: Bundle, raw: RawPaths) -> EventInput:
+    """The labelled snapshot table a timeline bundle's raw logs make, as ``causeline build``
+    would write it (each failure counted once by ``failure_counted``)."""
+    if bundle.spec.timeline is None:
+        raise DataError(f"{bundle.path}: raw logs need a bundle built from timelines; give "
+                        "--events with a table instead")
+    built = build_snapshots(bundle.spec.timeline, read_inputs(bundle.spec, raw))
+    table = labelled_table(bundle.spec, built)
+    text = [c for c in (bundle.spec.id, bundle.spec.entity) if c is not None]
+    for column in text:
+        if column in table.columns:
+            table[column] = table[column].astype("string")
+    return EventInput(table, bundle.spec.id, bundle.spec.time, False,
+                      np.arange(1, len(table) + 1), empty_rejects(table.columns))
 
 
 def latest_entries(table: pd.DataFrame, id_column: str) -> np.ndarray:

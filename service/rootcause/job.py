@@ -24,6 +24,7 @@ import pandas as pd
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import DataError
 from causeline.service.explain.reasons import ReasonCatalogue
+from causeline.service.features.logs import RawPaths
 from causeline.service.files.rejects import (
     write_rejects,
 )
@@ -162,7 +163,7 @@ def start_rootcause(out: Path, options: RootCauseOptions) -> JobStart:
 
 def finish_rootcause(
     bundle: Bundle,
-    events_path: Path,
+    events_path: Path | RawPaths,
     out: Path,
     options: RootCauseOptions,
     start: JobStart,

@@ -14,6 +14,7 @@ import pandas as pd
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import DataError
 from causeline.service.explain.explainer import Explainer
+from causeline.service.features.logs import RawPaths
 from causeline.service.files.predlog import is_prediction_log
 from causeline.service.rootcause.fix import Target
 from causeline.service.rootcause.grouping import (
@@ -27,6 +28,7 @@ from causeline.service.rootcause.grouping import (
 )
 from causeline.service.rootcause.intake import (
     event_times,
+    events_from_logs,
     read_events,
     screen_rows,
     window_mask,
@@ -67,24 +69,29 @@ class LocalSlices:
 
 def run_rootcause(
     bundle: Bundle,
-    events_path: Path,
+    events_path: Path | RawPaths,
     out: Path,
     options: RootCauseOptions | None = None,
     progress=quiet,  # type: ignore[no-untyped-def]
 ) -> RootCauseResult:
-    """Group the selected events and write the outputs into ``out``."""
+    """Group the selected events (a table, a prediction log, or a timeline bundle's raw logs)
+    and write the outputs into ``out``."""
     options = options or RootCauseOptions()
     out = Path(out)
     start = start_rootcause(out, options)
     since, until = start.since, start.until
 
-    if is_prediction_log(events_path) and not options.predicted:
-        raise DataError(
-            f"{events_path}: a prediction log has no labels; pass --predicted to group rows "
-            "scored at or above the threshold"
-        )
-    progress(f"step 1/{STEPS}: reading {events_path}")
-    source = read_events(bundle, events_path)
+    if isinstance(events_path, RawPaths):
+        progress(f"step 1/{STEPS}: building snapshots from the {events_path}")
+        source = events_from_logs(bundle, events_path)
+    else:
+        if is_prediction_log(events_path) and not options.predicted:
+            raise DataError(
+                f"{events_path}: a prediction log has no labels; pass --predicted to group "
+                "rows scored at or above the threshold"
+            )
+        progress(f"step 1/{STEPS}: reading {events_path}")
+        source = read_events(bundle, events_path)
     if source.repeats_dropped:
         progress(f"step 1/{STEPS}: {source.repeats_dropped:,} repeated log entries dropped "
                  "(an event id logged more than once counts once, its latest entry)")

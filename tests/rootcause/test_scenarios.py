@@ -122,3 +122,28 @@ def test_a_failure_foreseen_by_several_snapshots_counts_once(bundles, folder) ->
     assert len(result.event_groups) == int(positive.sum())
     assert not result.event_groups["event_id"].str.endswith("-earlier").any()
     assert result.summary["counts"]["snapshots_before_counted_failures"] == 40
+
+
+def test_raw_logs_give_the_groups_of_the_table_they_build(bundles, folder) -> None:  # type: ignore[no-untyped-def]
+    # `rootcause` on a timeline bundle's raw logs builds the same labelled table as
+    # `causeline build` (the same code), so the groups are those of the built table.
+    from causeline.service.features.logs import RawPaths
+    from fixtures.demo.timeline import generate_timeline, write_timeline
+
+    logs = folder / "raw-logs"
+    write_timeline(generate_timeline(cases=32, days=365, seed=FRESH_SEEDS[0]), logs)
+    raw = RawPaths(logs / "readings.parquet", logs / "excursions.parquet",
+                   logs / "maintenance.parquet", logs / "cases.parquet")
+    bundle = load_bundle(bundles["timeline"])
+    from_logs = run_rootcause(bundle, raw, folder / "from-logs")
+    from causeline.cli import main
+
+    table = folder / "built.parquet"
+    assert main(["build", "--config", str(SCENARIOS["timeline"].config),
+                 "--readings", str(raw.readings), "--failures", str(raw.failures),
+                 "--actions", str(raw.actions), "--attributes", str(raw.attributes),
+                 "--out", str(table)]) == 0
+    from_table = run_rootcause(bundle, table, folder / "from-table")
+    pd.testing.assert_frame_equal(from_logs.groups, from_table.groups)
+    pd.testing.assert_frame_equal(from_logs.event_groups, from_table.event_groups)
+    assert from_logs.summary["input"].startswith("raw logs (readings ")
