@@ -141,6 +141,8 @@ def _build(args: argparse.Namespace) -> int:
         raise CauselineError("give --out (or --list-features)")
     result = build(args.config, _raw_paths(args), args.out)
     print(f"snapshots: {describe_counts(result.counts)}")
+    for note in result.notes:
+        print(f"note: {note}")
     print(f"wrote {len(result.table)} labelled snapshots -> {args.out}")
     return 0
 
@@ -171,6 +173,8 @@ def _train(args: argparse.Namespace) -> int:
         from causeline.training.build import describe_counts
 
         print(f"snapshots: {describe_counts(manifest.training['labels'])}")
+    for note in result.notes:
+        print(f"note: {note}")
     print(f"model card: {result.path / 'MODEL_CARD.md'}")
     return 0
 

@@ -14,7 +14,12 @@ import pandas as pd
 
 from causeline.service.errors import ConfigError
 from causeline.service.features.logs import RawPaths, TimelineInputs, read_inputs
-from causeline.service.features.snapshots import build_snapshots, label_counts, labelled_table
+from causeline.service.features.snapshots import (
+    build_snapshots,
+    coverage_notes,
+    label_counts,
+    labelled_table,
+)
 from causeline.service.files.tables import write_table
 from causeline.service.spec.timeline import TimelineSpec
 from causeline.training.config import TrainConfig, load_config
@@ -24,6 +29,7 @@ from causeline.training.config import TrainConfig, load_config
 class BuildResult:
     table: pd.DataFrame
     counts: dict[str, int]
+    notes: list[str]
 
 
 def timeline_of(config: TrainConfig) -> TimelineSpec:
@@ -35,7 +41,8 @@ def timeline_of(config: TrainConfig) -> TimelineSpec:
 def build_table(config: TrainConfig, inputs: TimelineInputs) -> BuildResult:
     """The labelled snapshot table for ``config`` and the count of each snapshot status."""
     built = build_snapshots(timeline_of(config), inputs)
-    return BuildResult(labelled_table(config, built), label_counts(built))
+    return BuildResult(labelled_table(config, built), label_counts(built),
+                       coverage_notes(timeline_of(config), built))
 
 
 def build(config_path: Path, paths: RawPaths, out: Path) -> BuildResult:

@@ -57,6 +57,7 @@ LIBRARIES = ("causeline", "lightgbm", "numpy", "pandas", "scikit-learn", "shap")
 class TrainResult:
     path: Path
     manifest: Manifest
+    notes: tuple[str, ...] = ()  # what building snapshots from raw logs had to say
 
 
 def train(config_path: Path, data_path: Path, out: Path) -> TrainResult:
@@ -77,7 +78,7 @@ def train_timeline(config_path: Path, paths: RawPaths, out: Path) -> TrainResult
     manifest, model_text = fit_bundle(config, built.table, paths.fingerprint(), built.counts)
     write_bundle(out, manifest, model_text)
     bundle = load_bundle(out)
-    return TrainResult(path=Path(out), manifest=bundle.manifest)
+    return TrainResult(path=Path(out), manifest=bundle.manifest, notes=tuple(built.notes))
 
 
 def fit_bundle(

@@ -55,6 +55,9 @@ class Explainer:
         # Categorical and range-less features get infinite bounds: never "outside".
         self._low = np.array([_bound(s.minimum, s, -np.inf) for s in stats])
         self._high = np.array([_bound(s.maximum, s, np.inf) for s in stats])
+        # A missing value that is a state (no failure logged yet) is no gap to warn about.
+        meanings = bundle.spec.missing_meanings
+        self._gap = np.array([name not in meanings for name in bundle.spec.feature_names])
 
     def explain(self, table: Table) -> Explanation:
         """Explain every row; rows with problems are scored with those cells treated as missing."""
@@ -85,7 +88,7 @@ class Explainer:
             out[problem.row].append(_problem_text(problem))
         # The trees send a missing value down the side training chose for it, so a score is
         # always given; an event with few values gets a score resting on little, and says so.
-        missing = np.isnan(matrix.values)
+        missing = np.isnan(matrix.values) & self._gap
         if missing.any():
             told = {(problem.row, problem.column) for problem in matrix.problems}
             total = len(matrix.names)

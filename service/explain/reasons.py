@@ -71,7 +71,8 @@ class ReasonCatalogue:
         # A directional code without a numeric typical value can never claim its features.
         self._never = (directions != "any") & ~numeric
         self._typical = np.array([t if isinstance(t, float | int) else np.nan for t in typical])
-        self._templates = [Template(code.text, self.stats) for code in self.codes]
+        meanings = spec.missing_meanings
+        self._templates = [Template(code.text, self.stats, meanings) for code in self.codes]
         # Per code, the features its reasons show: its own, then any its text names.
         self._shown = [
             [(name, position[name])
@@ -144,7 +145,9 @@ class Template:
     (fixed, so written in at once). Never Python's format: a template cannot reach attributes.
     """
 
-    def __init__(self, text: str, stats: Mapping[str, FeatureStats]) -> None:
+    def __init__(self, text: str, stats: Mapping[str, FeatureStats],
+                 meanings: Mapping[str, str] | None = None) -> None:
+        self.meanings = dict(meanings or {})  # words for a missing value that is a state
         self.parts: list[tuple[str, str | None]] = []  # literal text, then a feature or None
         position = 0
         for match in PLACEHOLDER.finditer(text):
@@ -158,10 +161,15 @@ class Template:
 
     def fill(self, values: Mapping[str, Value]) -> str:
         filled = [
-            literal if name is None else literal + format_value(values.get(name))
+            literal if name is None else literal + self._show(name, values.get(name))
             for literal, name in self.parts
         ]
         return "".join(filled) + self.tail
+
+    def _show(self, name: str, value: Value) -> str:
+        if value is None and name in self.meanings:
+            return self.meanings[name]
+        return format_value(value)
 
 
 def format_value(value: Value) -> str:

@@ -41,7 +41,7 @@ from causeline.service.features.logs import (
 )
 from causeline.service.features.windows import Prefix, last_valid_index, rank
 from causeline.service.spec.dataset import DatasetSpec
-from causeline.service.spec.timeline import TimelineSpec
+from causeline.service.spec.timeline import WHOLE_OR_NOT, TimelineSpec
 
 STATUS = "snapshot_status"
 DOWN_RULE = "down_rule"  # why a down snapshot is down (labels.DOWN_REASONS), else empty
@@ -49,6 +49,7 @@ DOWN_RULE = "down_rule"  # why a down snapshot is down (labels.DOWN_REASONS), el
 # the snapshot that counts it (the last before it), so the root-cause job counts it once.
 FAILURE_TIME = "failure_time"
 FAILURE_COUNTED = "failure_counted"
+THIN = "thin_windows"  # table.attrs: per window index, snapshots its coverage rules blanked
 LATEST = "latest"
 NOW = "now"
 
@@ -103,7 +104,9 @@ def build_snapshots(
         spec.readings.entity: names[snap_codes],
         spec.readings.time: clock.column(snap_times),
     }
-    out.update(_window_features(spec, clock, codes, times, frame, start, snap_codes, snap_times))
+    windowed, thin = _window_features(spec, clock, codes, times, frame, start, snap_codes,
+                                      snap_times)
+    out.update(windowed)
     hi = rank(codes, times, snap_codes, snap_times, inclusive=True)
     for state in spec.readings.states:
         latest = last_valid_index(codes, frame[state].notna().to_numpy())[np.maximum(hi - 1, 0)]
@@ -150,6 +153,7 @@ def build_snapshots(
         end[snap_codes],
     )
     table[DOWN_RULE] = reasons
+    table.attrs[THIN] = thin
     # Which failure a positive snapshot foresees, so a failure foreseen by several snapshots
     # can be counted once (labelled_table marks the one that counts it).
     upcoming, _ = failure_log.next_after(snap_codes, snap_times)
@@ -213,6 +217,20 @@ def label_counts(table: pd.DataFrame) -> dict[str, int]:
     reasons = table[DOWN_RULE].value_counts()
     out.update({f"down: {reason}": int(reasons.get(reason, 0)) for reason in DOWN_REASONS})
     return out
+
+
+def coverage_notes(spec: TimelineSpec, table: pd.DataFrame) -> list[str]:
+    """One line per window whose coverage rules blanked aggregates, for build and train."""
+    notes = []
+    for index, count in sorted(table.attrs.get(THIN, {}).items()):
+        if count:
+            window = spec.windows[index]
+            notes.append(
+                f"windows[{index}] ({spec.window_tag(window)}): {count} of {len(table)} "
+                f"snapshots reach back less than {window.min_coverage:.0%} of the window "
+                f"(min_coverage) or hold fewer than {window.min_readings} valid reading(s) of "
+                "a measurement (min_readings); those aggregates are missing")
+    return notes
 
 
 def labelled_table(dataset: DatasetSpec, built: pd.DataFrame) -> pd.DataFrame:
@@ -330,37 +348,55 @@ def _cadence(
 def _window_features(
     spec: TimelineSpec, clock: Clock, codes: np.ndarray, times: np.ndarray,
     frame: pd.DataFrame, start: np.ndarray, snap_codes: np.ndarray, snap_times: np.ndarray,
-) -> dict[str, np.ndarray]:
+) -> tuple[dict[str, np.ndarray], dict[int, int]]:
+    """The window aggregates, and per window how many snapshots its coverage rules blanked."""
     hi = rank(codes, times, snap_codes, snap_times, inclusive=True)
     first = start[snap_codes]
     elapsed = (times - times[start[codes]]).astype(np.float64) / clock.per_unit
     out: dict[str, np.ndarray] = {}
     features = spec.window_features()
-    limits: dict[str, set[float]] = {}
+    limits: dict[str, set[tuple[str, float]]] = {}
     for _, index, measurement, aggregation in features:
-        if aggregation == "count_above":
-            limits.setdefault(measurement, set()).add(spec.windows[index].limits[measurement])
+        if aggregation in ("count_above", "count_below"):
+            side = aggregation.removeprefix("count_")
+            limit = spec.windows[index].limit(measurement, side)
+            assert limit is not None  # the spec checks every count has its limit
+            limits.setdefault(measurement, set()).add((side, limit))
     used = list(dict.fromkeys(measurement for _, _, measurement, _ in features))
     prefix = Prefix(
         codes, {m: frame[m].to_numpy(dtype=np.float64) for m in used}, elapsed, limits,
         {m for _, _, m, aggregation in features if aggregation == "slope"},
     )
+    # How far back each entity's readings go from the snapshot: a window reaching before the
+    # first reading is partial (an entity's first days).
+    history = snap_times - times[first]
+    thin: dict[int, int] = {}
     for index, window in enumerate(spec.windows):
         if window.readings is not None:
-            lo = np.maximum(first, hi - window.readings)
+            lo = np.minimum(np.maximum(first, hi - window.readings), hi)
+            covered = (hi - lo) / window.readings
         else:
-            lo = rank(codes, times, snap_codes, snap_times - clock.span(window.span or 0), True)
-            lo = np.maximum(lo, first)
-        lo = np.minimum(lo, hi)
+            span = clock.span(window.span or 0)
+            lo = np.minimum(np.maximum(rank(codes, times, snap_codes, snap_times - span, True),
+                                       first), hi)
+            covered = np.minimum(history / span, 1.0) if span > 0 else np.ones(hi.size)
+        short = covered < window.min_coverage
+        blanked = short & (hi > lo)
         mine = [(name, measurement, aggregation)
                 for name, w, measurement, aggregation in features if w == index]
         for measurement in dict.fromkeys(m for _, m, _ in mine):
-            wanted = [(aggregation, window.limits.get(measurement))
+            wanted = [(aggregation, window.limit(measurement, aggregation.removeprefix("count_")))
                       for _, m, aggregation in mine if m == measurement]
             values = prefix.aggregate(measurement, lo, hi, first, wanted)
-            names = [name for name, m, _ in mine if m == measurement]
-            out.update(zip(names, values, strict=True))
-    return out
+            few = prefix.valid_count(measurement, lo, hi, first) < window.min_readings
+            blank = short | few
+            blanked |= few & (hi > lo)
+            ours = [(name, aggregation) for name, m, aggregation in mine if m == measurement]
+            for (name, aggregation), value in zip(ours, values, strict=True):
+                out[name] = value if aggregation in WHOLE_OR_NOT else np.where(blank, np.nan,
+                                                                                value)
+        thin[index] = int(blanked.sum())
+    return out, thin
 
 
 def _since(now: np.ndarray, then: np.ndarray, found: np.ndarray, clock: Clock) -> np.ndarray:

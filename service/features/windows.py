@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from pandas.api.indexers import BaseIndexer
 
 from causeline.service.spec.timeline import Aggregation
 
@@ -99,7 +100,7 @@ class Prefix:
 
     def __init__(
         self, codes: np.ndarray, values: dict[str, np.ndarray], clock: np.ndarray,
-        limits: dict[str, set[float]], slopes: set[str],
+        limits: dict[str, set[tuple[str, float]]], slopes: set[str],
     ) -> None:
         self.codes, self.values = codes, values
         columns: dict[str, np.ndarray] = {}
@@ -115,8 +116,9 @@ class Prefix:
                 t = np.where(valid, clock, 0.0)
                 columns.update({(name, "t"): t, (name, "tt"): t * t,  # type: ignore[dict-item]
                                 (name, "tx"): t * centred})
-            for limit in sorted(limits.get(name, ())):
-                columns[(name, limit)] = valid & (x > limit)  # type: ignore[index]
+            for side, limit in sorted(limits.get(name, ())):
+                beyond = x > limit if side == "above" else x < limit
+                columns[(name, side, limit)] = valid & beyond  # type: ignore[index]
         self.sums = group_cumsum(codes, columns)  # type: ignore[arg-type]
         present = [~np.isnan(x) for x in values.values()]
         latest = last_valid_index(codes, np.column_stack(present)) if present else None
@@ -127,8 +129,8 @@ class Prefix:
         wanted: list[tuple[Aggregation, float | None]],
     ) -> list[np.ndarray]:
         """Each wanted aggregation of measurement ``name`` over the windows ``[lo, hi)``."""
-        def total(kind: object) -> np.ndarray:
-            return window_sum(self.sums[(name, kind)], lo, hi, start)  # type: ignore[index]
+        def total(*kind: object) -> np.ndarray:
+            return window_sum(self.sums[(name, *kind)], lo, hi, start)  # type: ignore[index]
 
         n, sx = total("n"), total("x")
         out: list[np.ndarray] = []
@@ -150,15 +152,60 @@ class Prefix:
                     sxx = stt - st * st / n
                     usable = (n > 1) & (sxx > 1e-12 * np.maximum(stt, 1.0))
                     out.append(np.where(usable, sxy / np.where(usable, sxx, 1.0), np.nan))
-                elif kind == "count_above":
-                    out.append(np.where(hi > lo, total(limit), np.nan))
+                elif kind == "count":
+                    out.append(n.astype(np.float64))
+                elif kind in ("count_above", "count_below"):
+                    side = kind.removeprefix("count_")
+                    out.append(np.where(hi > lo, total(side, limit), np.nan))
                 elif kind in ("min", "max"):
                     out.append(window_extreme(self.values[name], lo, hi, kind))
+                elif kind == "vs_median":
+                    median = window_median(self.values[name], lo, hi)
+                    out.append(self.last(name, lo, hi) - median)
                 else:  # last
-                    latest = self._latest[name][np.maximum(hi - 1, 0)]
-                    ok = (hi > lo) & (latest >= lo)
-                    out.append(np.where(ok, self.values[name][np.maximum(latest, 0)], np.nan))
+                    out.append(self.last(name, lo, hi))
         return out
+
+    def valid_count(self, name: str, lo: np.ndarray, hi: np.ndarray, start: np.ndarray
+                    ) -> np.ndarray:
+        """Valid readings of ``name`` in each window ``[lo, hi)``."""
+        return window_sum(self.sums[(name, "n")], lo, hi, start)  # type: ignore[index]
+
+    def last(self, name: str, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+        """The latest valid value of ``name`` in each window (NaN if none)."""
+        latest = self._latest[name][np.maximum(hi - 1, 0)]
+        ok = (hi > lo) & (latest >= lo)
+        return np.where(ok, self.values[name][np.maximum(latest, 0)], np.nan)
+
+
+class _Bounds(BaseIndexer):
+    """Window bounds given as arrays, for pandas' rolling machinery."""
+
+    def get_window_bounds(self, num_values: int = 0, min_periods: int | None = None,
+                          center: bool | None = None, closed: str | None = None,
+                          step: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+        return self.lo, self.hi  # type: ignore[attr-defined]
+
+
+def window_median(values: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Median of the valid values in each window ``[lo, hi)`` (NaN if none).
+
+    pandas' rolling median over explicit bounds: a sorted skip list that slides with the
+    windows, O(log w) per row added or dropped, since windows of rows sorted by (entity, time)
+    only move forward.
+    """
+    windows = lo.size
+    if windows == 0:
+        return np.empty(0)
+    # pandas wants one window per value: pad the shorter side (NaN values count as absent).
+    size = max(values.size, windows)
+    padded = np.full(size, np.nan)
+    padded[:values.size] = values
+    lo_all = np.full(size, lo[-1], dtype=np.int64)
+    hi_all = np.full(size, hi[-1], dtype=np.int64)
+    lo_all[:windows], hi_all[:windows] = lo, np.maximum(hi, lo)
+    rolled = pd.Series(padded).rolling(_Bounds(lo=lo_all, hi=hi_all), min_periods=1).median()
+    return rolled.to_numpy()[:windows]
 
 
 def _first_valid(codes: np.ndarray, x: np.ndarray, valid: np.ndarray) -> np.ndarray:

@@ -41,6 +41,9 @@ class FeatureSpec(Strict):
     expr: str | None = None
     categories: tuple[str, ...] | None = None
     allow_missing: bool = True
+    # What a missing value means when it is a state, not a gap (say, "no alarm logged"):
+    # reasons show these words and scoring raises no missing-value warning for it.
+    missing_means: str = ""
 
     @model_validator(mode="after")
     def _check(self) -> FeatureSpec:
@@ -214,6 +217,19 @@ class DatasetSpec(Strict):
     @property
     def feature_names(self) -> list[str]:
         return [feature.name for feature in self.features]
+
+    @property
+    def missing_meanings(self) -> dict[str, str]:
+        """Per feature whose missing value is a state, the words for it: the config's
+        ``missing_means``, else the timeline's (time since a failure or action never logged)."""
+        built = self.timeline.missing_meanings if self.timeline is not None else {}
+        out = {}
+        for feature in self.features:
+            meaning = feature.missing_means or (
+                "" if feature.derived else built.get(feature.source_column, ""))
+            if meaning:
+                out[feature.name] = meaning
+        return out
 
     def feature(self, name: str) -> FeatureSpec:
         for feature in self.features:

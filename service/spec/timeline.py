@@ -11,7 +11,11 @@ from pydantic import Field, model_validator
 
 from causeline.service.spec.base import NAME_PATTERN, Strict
 
-Aggregation = Literal["last", "mean", "min", "max", "std", "slope", "count_above"]
+Aggregation = Literal["last", "mean", "min", "max", "std", "slope", "count", "count_above",
+                      "count_below", "vs_median"]
+# Aggregations that describe the latest reading or the window's coverage itself: the coverage
+# rules (min_coverage, min_readings) never blank them.
+WHOLE_OR_NOT = ("last", "count")
 CalendarPart = Literal["month", "weekday", "hour"]
 # A span on a time clock: a number and a unit, e.g. 30m, 24h, 7d, 2w.
 DURATION = re.compile(r"^(\d+(?:\.\d+)?)([smhdw])$")
@@ -101,23 +105,47 @@ class SnapshotCadence(Strict):
     at: str | None = Field(default=None, pattern=r"^([01]\d|2[0-3]):[0-5]\d$")
 
 
+class Limit(Strict):
+    """Separate limits for ``count_above`` and ``count_below`` on one measurement."""
+
+    above: float | None = None
+    below: float | None = None
+
+
 class LookbackWindow(Strict):
-    """A window ending at the snapshot: a span ``(t - span, t]`` or the last N readings."""
+    """A window ending at the snapshot: a span ``(t - span, t]`` or the last N readings.
+
+    ``count_above`` counts readings strictly above the measurement's limit, ``count_below``
+    strictly below it (a bare number serves both; ``{above: .., below: ..}`` sets each).
+    ``min_coverage``: an aggregate is missing where the entity's history reaches back less
+    than this share of the window (its first days); ``min_readings``: where the window holds
+    fewer valid readings of the measurement. Neither blanks ``last`` or ``count``.
+    """
 
     span: str | float | None = None
     readings: int | None = Field(default=None, ge=1)
     aggregations: tuple[Aggregation, ...] = Field(min_length=1)
     measurements: tuple[str, ...] | None = None
-    # count_above counts readings strictly above the measurement's limit.
-    limits: dict[str, float] = Field(default_factory=dict)
+    limits: dict[str, float | Limit] = Field(default_factory=dict)
+    min_coverage: float = Field(default=0.5, ge=0.0, le=1.0)
+    min_readings: int = Field(default=1, ge=1)
 
     @model_validator(mode="after")
     def _one(self) -> LookbackWindow:
         if (self.span is None) == (self.readings is None):
             raise ValueError("give exactly one of span or readings")
-        if ("count_above" in self.aggregations) != bool(self.limits):
-            raise ValueError("count_above and limits go together")
+        counting = {"count_above", "count_below"} & set(self.aggregations)
+        if self.limits and not counting:
+            raise ValueError("limits are for count_above and count_below; add one of them "
+                             "to aggregations or remove limits")
         return self
+
+    def limit(self, measurement: str, side: str) -> float | None:
+        """The limit ``count_above`` (side ``above``) or ``count_below`` uses, if any."""
+        value = self.limits.get(measurement)
+        if value is None or isinstance(value, int | float):
+            return value
+        return value.above if side == "above" else value.below
 
 
 class DownAfterFailure(Strict):
@@ -202,6 +230,16 @@ class TimelineSpec(Strict):
             for name in (*(window.measurements or ()), *window.limits):
                 if name not in measured:
                     raise ValueError(f"windows[{index}]: {name!r} is not a measurement")
+            for aggregation in ("count_above", "count_below"):
+                if aggregation not in window.aggregations:
+                    continue
+                side = aggregation.removeprefix("count_")
+                for name in window.measurements or self.readings.measurements:
+                    if window.limit(name, side) is None:
+                        raise ValueError(
+                            f"windows[{index}]: {aggregation} needs a limit for {name!r}; "
+                            f"add it to limits ({{{name}: <value>}}, or {{{name}: {{{side}: "
+                            "<value>}}}) or list the measurements the window covers")
         kinds = set(self.actions.kinds) if self.actions else set()
         for where, rule in [("down", self.down),
                             *((f"down.by_type.{k}", r) for k, r in self.down.by_type.items())]:
@@ -244,8 +282,6 @@ class TimelineSpec(Strict):
             tag = self.window_tag(window)
             for measurement in window.measurements or self.readings.measurements:
                 for aggregation in window.aggregations:
-                    if aggregation == "count_above" and measurement not in window.limits:
-                        continue
                     out.append((f"{measurement}__{aggregation}_{tag}", index, measurement,
                                 aggregation))
         return out
@@ -253,6 +289,15 @@ class TimelineSpec(Strict):
     def action_feature(self, kind: str) -> str:
         slug = re.sub(r"[^a-z0-9]+", "_", kind.lower()).strip("_")
         return f"since_{slug}_{self.time_suffix}"
+
+    @property
+    def missing_meanings(self) -> dict[str, str]:
+        """What a missing value of a time-since feature means: nothing of its kind logged yet,
+        a state of the entity, not a gap in the data."""
+        out = {f"since_failure_{self.time_suffix}": "no failure logged"}
+        for kind in self.actions.kinds if self.actions else ():
+            out[self.action_feature(kind)] = f"no {kind} logged"
+        return out
 
     @property
     def feature_names(self) -> list[str]:

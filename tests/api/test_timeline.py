@@ -143,7 +143,7 @@ def test_explain_from_raw_logs_equals_explain_of_the_built_table(built, tmp_path
     # Raw scoring also covers snapshots training leaves out (censored, down), so compare the
     # snapshots both have: every one of the built table's.
     assert set(built_scores.index) <= set(raw.index)
-    joined = built_scores.join(raw, rsuffix="_raw")
+    joined = built_scores.join(raw.add_suffix("_raw"))
     np.testing.assert_allclose(joined["probability"], joined["probability_raw"], atol=1e-12)
     assert (joined["reason_1"].fillna("") == joined["reason_1_raw"].fillna("")).all()
     assert main(["explain", "--bundle", str(bundle_path), *paths, "--latest",
@@ -315,3 +315,21 @@ def test_a_fractional_entity_id(client: TestClient, body: dict) -> None:
     errors = _refused(client, body)
     assert {e["field"] for e in errors} == {f"readings.{i}.case_id" for i in range(50)}
     assert {e["message"] for e in errors} == {"expected a string"}
+
+
+def test_no_action_logged_is_a_state_not_a_missing_value(built) -> None:  # type: ignore[no-untyped-def]
+    # A case never cleaned has no 'days since coil cleaning': that is what the case is, not a
+    # gap in its data, so it raises no missing-value warning and reasons say it in words.
+    _, snapshots, bundle_path = built
+    explainer = Explainer(load_bundle(bundle_path))
+    rows = snapshots.head(200).copy()
+    rows["since_coil_cleaning_d"] = np.nan
+    rows["discharge_pressure_kpa__last_4h"] = 2600.0  # well above any typical value
+    rows.loc[rows.index[:3], "probe_battery_pct__last_4h"] = np.nan  # a real gap, for contrast
+    explanation = explainer.explain(rows)
+    warned = [w for row in explanation.warnings for w in row]
+    assert not any("since_coil_cleaning_d" in w for w in warned)
+    assert sum("probe_battery_pct__last_4h" in w for w in warned) == 3
+    texts = [r.text for row in explanation.reasons for r in row if r.code == "CONDENSER_FOULED"]
+    assert texts, "the fouled-condenser code should rank for these rows"
+    assert all("no coil_cleaning logged" in text and "missing" not in text for text in texts)

@@ -161,16 +161,28 @@ def test_periodic_snapshots_at_a_fixed_hour() -> None:
     readings = pd.DataFrame({"case": "c1", "time": times, "x": np.arange(40.0)})
     built = build_snapshots(spec, TimelineInputs(readings, None))
     assert list(built["time"]) == list(pd.to_datetime(["2025-03-01 06:00", "2025-03-02 06:00"]))
-    # 2025-03-02 06:00 is x = 26; the 12 h window (18:00, 06:00] holds x = 15..26.
-    assert built["x__mean_12h"].tolist() == [1.0, pytest.approx(np.mean(np.arange(15, 27)))]
-    assert built["x__count_above_12h"].tolist() == [0.0, 12.0]
+    # 2025-03-02 06:00 is x = 26; the 12 h window (18:00, 06:00] holds x = 15..26. At the first
+    # snapshot the readings reach back 2 h of the 12 h window, under the default min_coverage
+    # of half the window: its aggregates are missing, not a 2-hour mean passed off as 12 h.
+    assert np.isnan(built["x__mean_12h"].iloc[0]) and np.isnan(built["x__count_above_12h"].iloc[0])
+    assert built["x__mean_12h"].iloc[1] == pytest.approx(np.mean(np.arange(15, 27)))
+    assert built["x__count_above_12h"].iloc[1] == 12.0
+    assert built.attrs["thin_windows"] == {0: 1}
 
 
-AGGREGATIONS = ["last", "mean", "min", "max", "std", "slope", "count_above"]
+AGGREGATIONS = ["last", "mean", "min", "max", "std", "slope", "count", "count_above",
+                "count_below", "vs_median"]
 
 
-def direct(readings: pd.DataFrame, t: float, span: float | None, n: int | None) -> pd.Series:
-    """Each aggregation over one window, written directly: pandas and numpy on the rows."""
+def direct(readings: pd.DataFrame, t: float, span: float | None, n: int | None,
+           min_coverage: float, min_readings: int) -> pd.Series:
+    """Each aggregation over one window, written directly: pandas and numpy on the rows.
+
+    Coverage rules as docs/timelines.md states them: an aggregate other than last and count is
+    missing where the entity's readings reach back less than min_coverage of the window (span:
+    t minus the first reading over the span; readings: rows available over n), or where the
+    window holds fewer than min_readings valid values.
+    """
     past = readings[readings["cycle"] <= t]
     window = past.tail(n) if n is not None else past[past["cycle"] > t - (span or 0)]
     x = window["x"].dropna()
@@ -178,18 +190,30 @@ def direct(readings: pd.DataFrame, t: float, span: float | None, n: int | None) 
     slope = np.nan
     if len(x) > 1 and times.nunique() > 1:
         slope = np.polyfit(times.to_numpy(float), x.to_numpy(float), 1)[0]
-    return pd.Series({
+    out = pd.Series({
         "last": x.iloc[-1] if len(x) else np.nan,
         "mean": x.mean() if len(x) else np.nan,
         "min": x.min() if len(x) else np.nan,
         "max": x.max() if len(x) else np.nan,
         "std": x.std(ddof=1) if len(x) > 1 else np.nan,
         "slope": slope,
+        "count": float(len(x)),
         "count_above": float((x > 0.5).sum()) if len(window) else np.nan,
+        "count_below": float((x < -0.5).sum()) if len(window) else np.nan,
+        "vs_median": x.iloc[-1] - x.median() if len(x) else np.nan,
     })
+    if n is not None:
+        coverage = len(window) / n
+    else:
+        coverage = min((t - readings["cycle"].min()) / span, 1.0) if span else 1.0
+    if len(window) and (coverage < min_coverage or len(x) < min_readings):
+        out[[a for a in AGGREGATIONS if a not in ("last", "count")]] = np.nan
+    elif not len(window):
+        out[[a for a in AGGREGATIONS if a != "count"]] = np.nan
+    return out
 
 
-@settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     steps=st.lists(
         st.tuples(st.sampled_from(["a", "b", "c"]), st.integers(0, 4),
@@ -198,9 +222,12 @@ def direct(readings: pd.DataFrame, t: float, span: float | None, n: int | None) 
     ),
     span=st.integers(1, 8),
     n=st.integers(1, 5),
+    min_coverage=st.sampled_from([0.0, 0.5, 1.0]),
+    min_readings=st.integers(1, 3),
 )
 def test_window_aggregates_match_a_direct_computation(
-    steps: list[tuple[str, int, float | None]], span: int, n: int
+    steps: list[tuple[str, int, float | None]], span: int, n: int, min_coverage: float,
+    min_readings: int,
 ) -> None:
     # Random timelines: repeated times, gaps and missing values included. The standard deviation
     # comes from running sums, good to about sqrt(machine epsilon) times the values' spread.
@@ -210,19 +237,39 @@ def test_window_aggregates_match_a_direct_computation(
         clocks[unit] = clocks.get(unit, 0) + gap
         rows.append((unit, clocks[unit], np.nan if value is None else value))
     readings = pd.DataFrame(rows, columns=["unit", "cycle", "x"])
+    rules = {"limits": {"x": {"above": 0.5, "below": -0.5}}, "min_coverage": min_coverage,
+             "min_readings": min_readings}
     spec = cycle_spec(windows=[
-        {"span": span, "aggregations": AGGREGATIONS, "limits": {"x": 0.5}},
-        {"readings": n, "aggregations": AGGREGATIONS, "limits": {"x": 0.5}},
+        {"span": span, "aggregations": AGGREGATIONS, **rules},
+        {"readings": n, "aggregations": AGGREGATIONS, **rules},
     ])
     built = build_snapshots(spec, TimelineInputs(readings, None))
     for _, snapshot in built.iterrows():
         own = readings[readings["unit"] == snapshot["unit"]]
         # Rows at the same time keep their log order, the builder's order too (stable sort).
         for tag, window_span, count in ((f"{span}c", span, None), (f"{n}r", None, n)):
-            expected = direct(own, snapshot["cycle"], window_span, count)
+            expected = direct(own, snapshot["cycle"], window_span, count, min_coverage,
+                              min_readings)
             got = pd.Series({a: snapshot[f"x__{a}_{tag}"] for a in AGGREGATIONS})
             np.testing.assert_allclose(got.to_numpy(float), expected.to_numpy(float),
                                        rtol=1e-7, atol=1e-6, err_msg=f"{tag} at {snapshot}")
+
+
+def test_a_bare_limit_serves_both_counts_and_a_missing_limit_is_an_error() -> None:
+    readings = pd.DataFrame({"unit": "u", "cycle": range(1, 7), "x": [0, 1, 2, 3, 4, 5.0]})
+    spec = cycle_spec(windows=[{"readings": 6, "aggregations": ["count_above", "count_below"],
+                                "limits": {"x": 2}, "min_coverage": 0}])
+    last = build_snapshots(spec, TimelineInputs(readings, None)).iloc[-1]
+    # x = 0..5 against the limit 2: three above (3, 4, 5), two below (0, 1).
+    assert (last["x__count_above_6r"], last["x__count_below_6r"]) == (3.0, 2.0)
+    data = cycle_spec().model_dump()
+    data["windows"] = [{"readings": 6, "aggregations": ["count_above"]}]
+    with pytest.raises(ConfigError, match=r"count_above needs a limit for 'x'"):
+        validate_model(TimelineSpec, data, "config.yaml")
+    data["windows"] = [{"readings": 6, "aggregations": ["count_below"],
+                        "limits": {"x": {"above": 3}}}]
+    with pytest.raises(ConfigError, match=r"count_below needs a limit for 'x'"):
+        validate_model(TimelineSpec, data, "config.yaml")
 
 
 def leak_probe_inputs() -> tuple[TimelineSpec, pd.DataFrame]:
