@@ -18,7 +18,7 @@ from causeline.service.api.schema import json_type, number_error
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import CauselineError, first_line, quoted
 from causeline.service.features.logs import LogValueError, TimelineInputs
-from causeline.service.features.snapshots import entity_features
+from causeline.service.features.snapshots import DOWN_RULE, entity_features
 from causeline.service.spec.timeline import TimelineSpec
 
 
@@ -64,6 +64,15 @@ def online_event(
     if len(row) != 1:
         raise Problem(422, "the logs give no snapshot", "invalid-timeline",
                       [FieldError(field="readings", message="no snapshot could be built")])
+    rule = str(row[DOWN_RULE].iloc[0])
+    if rule:
+        # An entity that is down (a failure it has not come back from) cannot fail: a score
+        # would be a number about nothing, so it is refused, saying which down rule holds.
+        when = row[spec.time or spec.timeline.readings.time].iloc[0]
+        raise Problem(
+            409, f"the entity is down at {_plain(when)} ({rule}): a down entity is not scored",
+            "entity-down", [FieldError(field="failures", message=f"down: {rule}")],
+        )
     # The build makes every windowed feature; the model reads the ones its config lists.
     wanted = set(bundle.builder.required_columns) | {spec.id, spec.time, spec.entity}
     return {name: _plain(value) for name, value in row.iloc[0].items() if name in wanted}

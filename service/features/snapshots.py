@@ -265,11 +265,22 @@ def labelled_table(dataset: DatasetSpec, built: pd.DataFrame) -> pd.DataFrame:
 def entity_features(
     dataset: DatasetSpec, inputs: TimelineInputs, at: object | None = None
 ) -> pd.DataFrame:
-    """The feature row of one entity at ``at`` (default: its latest reading), built by the same
-    code as the batch build; give at least the readings of the look-back windows."""
+    """The feature row of one entity at ``at`` (default: the latest moment its logs know of,
+    its latest reading or failure), built by the same code as the batch build; give at least
+    the readings of the look-back windows. The ``down_rule`` column says why the entity is
+    down then (empty when it is up): a down entity is not to be scored."""
     spec = timeline_of(dataset)
-    built = build_snapshots(spec, inputs, at=LATEST if at is None else pd.Series([at]))
-    return _name_columns(dataset, built).drop(columns=[STATUS, DOWN_RULE, FAILURE_TIME])
+    if at is None:
+        built = build_snapshots(spec, inputs, at=NOW)
+        if len(built) > 1:
+            listed = ", ".join(shown(name) for name in built[spec.readings.entity][:3])
+            raise LogValueError(
+                f"holds {len(built)} entities ({listed}{', ...' if len(built) > 3 else ''}); "
+                "a snapshot at a given time (or now) is built for one entity",
+                "readings", spec.readings.entity)
+    else:
+        built = build_snapshots(spec, inputs, at=pd.Series([at]))
+    return _name_columns(dataset, built).drop(columns=[STATUS, FAILURE_TIME])
 
 
 def snapshot_features(dataset: DatasetSpec, inputs: TimelineInputs) -> pd.DataFrame:

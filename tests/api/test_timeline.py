@@ -63,9 +63,12 @@ def test_online_snapshot_scores_like_the_batch_build(built, tmp_path: Path) -> N
     readings["time"] = readings["time"].astype(str)
     body = {
         "readings": _records(readings),
-        "failures": _records(logs.excursions[logs.excursions["case_id"] == case]
+        # The logs as they stood at `at`: a failure logged later would make the entity down now.
+        "failures": _records(logs.excursions[(logs.excursions["case_id"] == case)
+                                             & (logs.excursions["start"] <= at)]
                              .astype({"start": str})),
-        "actions": _records(logs.maintenance[logs.maintenance["case_id"] == case]
+        "actions": _records(logs.maintenance[(logs.maintenance["case_id"] == case)
+                                             & (logs.maintenance["time"] <= at)]
                             .astype({"time": str})),
         "attributes": _records(logs.cases[logs.cases["case_id"] == case])[0],
     }
@@ -333,3 +336,29 @@ def test_no_action_logged_is_a_state_not_a_missing_value(built) -> None:  # type
     texts = [r.text for row in explanation.reasons for r in row if r.code == "CONDENSER_FOULED"]
     assert texts, "the fouled-condenser code should rank for these rows"
     assert all("no coil_cleaning logged" in text and "missing" not in text for text in texts)
+
+
+def test_an_entity_down_now_is_refused_not_scored(client: TestClient, body: dict) -> None:
+    # A warm excursion logged after the case's latest reading, with nothing logged since: by
+    # the default down rule (down from the failure until readings resume) the case is down now
+    # (now is the failure itself, its latest log entry), and a score
+    # for it would be about nothing. The answer says so, with the rule (docs/timelines.md).
+    last = pd.Timestamp(body["readings"][-1]["time"])
+    failure = {"case_id": body["readings"][0]["case_id"], "type": "warm",
+               "start": (last + pd.Timedelta("2h")).isoformat()}
+    response = client.post("/v1/score/timeline", json={**body, "failures": [failure]})
+    assert response.status_code == 409, response.text
+    problem = response.json()
+    assert problem["type"].endswith("entity-down")
+    assert "is down at" in problem["detail"] and "after failure" in problem["detail"]
+    # The same failure with `at` before it: the case was up then, and is scored.
+    earlier = client.post("/v1/score/timeline", json={**body, "failures": [failure],
+                                                      "at": last.isoformat()})
+    assert earlier.status_code == 200, earlier.text
+    # Readings resumed after the failure: up again, scored at the latest reading.
+    resumed = dict(body["readings"][-1], time=(last + pd.Timedelta("6h")).isoformat())
+    later = client.post("/v1/score/timeline",
+                        json={**body, "failures": [failure],
+                              "readings": [*body["readings"], resumed]})
+    assert later.status_code == 200, later.text
+    assert later.json()["results"][0]["id"].endswith((last + pd.Timedelta("6h")).isoformat())

@@ -38,10 +38,13 @@ async def score(request: Request) -> Response:
     return await _score(request, payload.model, payload.events, all_contributions(request))
 
 
-@router.post("/v1/score/timeline",
-             openapi_extra=openapi_request(TimelineScoreRequest, _SECURITY), **_SCORING)
+@router.post("/v1/score/timeline", response_model=ScoreResponse,
+             responses=problems.responses(400, 401, 403, 409, 413, 415, 422, 500),
+             openapi_extra=openapi_request(TimelineScoreRequest, _SECURITY))
 async def score_timeline(request: Request) -> Response:
-    """Score one entity from its raw logs: the snapshot is built by the batch build's code."""
+    """Score one entity from its raw logs, now (its latest reading or failure) or at ``at``:
+    the snapshot is built by the batch build's code. An entity that is down then (a failure
+    it has not come back from, by the config's down rules) is refused with 409."""
     check_key(request)
     payload = await read_body(request, TimelineScoreRequest)
     flag = all_contributions(request)
