@@ -80,8 +80,15 @@ def build_snapshots(
 
     failures = event_log(spec.failures.entity, spec.failures.time, inputs.failures, "failures",
                          names, clock, failure_filter(spec))
+    # Coverage counts from each entity's first reading ever, whatever rows are kept below.
+    origin = times[np.minimum(start, max(codes.size - 1, 0))] if codes.size else times
     if isinstance(at, str) and at == NOW:
         snap_codes, snap_times = _now(clock, codes, times, start, failures, as_of)
+        # One snapshot per entity reads only its latest rows: keep those, not the year.
+        kept = _recent(spec, clock, codes, times, frame, start, snap_codes, snap_times)
+        codes, times = codes[kept], times[kept]
+        frame = frame.iloc[kept].reset_index(drop=True)
+        start = np.searchsorted(codes, np.arange(names.size), side="left")
     elif at is not None:
         if names.size != 1:
             listed = ", ".join(shown(name) for name in names[:3])
@@ -105,7 +112,7 @@ def build_snapshots(
         spec.readings.time: clock.column(snap_times),
     }
     windowed, thin = _window_features(spec, clock, codes, times, frame, start, snap_codes,
-                                      snap_times)
+                                      snap_times, origin)
     out.update(windowed)
     hi = rank(codes, times, snap_codes, snap_times, inclusive=True)
     for state in spec.readings.states:
@@ -182,6 +189,35 @@ def _now(
     return entities, last
 
 
+def _recent(
+    spec: TimelineSpec, clock: Clock, codes: np.ndarray, times: np.ndarray, frame: pd.DataFrame,
+    start: np.ndarray, snap_codes: np.ndarray, snap_times: np.ndarray,
+) -> np.ndarray:
+    """Positions of the rows one snapshot per entity reads: the longest window's rows before
+    it (by span, or the last N readings), the entity's latest row (for the down rules) and the
+    latest valid row of each state column. Sorted, so the logs' order is kept."""
+    if snap_codes.size == 0:
+        return np.empty(0, dtype=np.int64)
+    hi = rank(codes, times, snap_codes, snap_times, inclusive=True)
+    first = start[snap_codes]
+    lo = hi - 1  # the latest row at or before the snapshot
+    spans = [clock.span(w.span) for w in spec.windows if w.span is not None]
+    if spans:
+        lo = np.minimum(lo, rank(codes, times, snap_codes, snap_times - max(spans), True))
+    counts = [w.readings for w in spec.windows if w.readings is not None]
+    if counts:
+        lo = np.minimum(lo, hi - max(counts))
+    lo = np.minimum(np.maximum(lo, first), hi)
+    sizes = hi - lo
+    offsets = np.arange(sizes.sum()) - np.repeat(np.cumsum(sizes) - sizes, sizes)
+    parts = [np.repeat(lo, sizes) + offsets]
+    for state in spec.readings.states:
+        valid = np.flatnonzero(frame[state].notna().to_numpy())
+        latest = valid[np.maximum(np.searchsorted(valid, hi) - 1, 0)] if valid.size else hi
+        parts.append(latest[(valid.size > 0) & (latest >= first) & (latest < hi)])
+    return np.unique(np.concatenate(parts))
+
+
 def _failure_rules(spec: TimelineSpec, failures: Log) -> np.ndarray:
     """Per failure row, the index of its down rule: 0 the default, then ``by_type``'s order."""
     types = list(spec.down.by_type)
@@ -226,10 +262,10 @@ def coverage_notes(spec: TimelineSpec, table: pd.DataFrame) -> list[str]:
         if count:
             window = spec.windows[index]
             notes.append(
-                f"windows[{index}] ({spec.window_tag(window)}): {count} of {len(table)} "
-                f"snapshots reach back less than {window.min_coverage:.0%} of the window "
-                f"(min_coverage) or hold fewer than {window.min_readings} valid reading(s) of "
-                "a measurement (min_readings); those aggregates are missing")
+                f"windows[{index}] ({spec.window_tag(window)}): {count:,} of {len(table):,} "
+                f"snapshots cover under {window.min_coverage:.0%} of the window or hold under "
+                f"{window.min_readings} reading(s) of a measurement; their aggregates are "
+                "missing (min_coverage, min_readings)")
     return notes
 
 
@@ -359,8 +395,11 @@ def _cadence(
 def _window_features(
     spec: TimelineSpec, clock: Clock, codes: np.ndarray, times: np.ndarray,
     frame: pd.DataFrame, start: np.ndarray, snap_codes: np.ndarray, snap_times: np.ndarray,
+    origin: np.ndarray,
 ) -> tuple[dict[str, np.ndarray], dict[int, int]]:
-    """The window aggregates, and per window how many snapshots its coverage rules blanked."""
+    """The window aggregates, and per window how many snapshots its coverage rules blanked.
+
+    ``origin``: each entity's first reading time, which coverage counts from."""
     hi = rank(codes, times, snap_codes, snap_times, inclusive=True)
     first = start[snap_codes]
     elapsed = (times - times[start[codes]]).astype(np.float64) / clock.per_unit
@@ -377,10 +416,11 @@ def _window_features(
     prefix = Prefix(
         codes, {m: frame[m].to_numpy(dtype=np.float64) for m in used}, elapsed, limits,
         {m for _, _, m, aggregation in features if aggregation == "slope"},
+        {m for _, _, m, aggregation in features if aggregation == "std"},
     )
     # How far back each entity's readings go from the snapshot: a window reaching before the
     # first reading is partial (an entity's first days).
-    history = snap_times - times[first]
+    history = snap_times - origin[snap_codes]
     thin: dict[int, int] = {}
     for index, window in enumerate(spec.windows):
         if window.readings is not None:
@@ -392,7 +432,9 @@ def _window_features(
                                        first), hi)
             covered = np.minimum(history / span, 1.0) if span > 0 else np.ones(hi.size)
         short = covered < window.min_coverage
-        blanked = short & (hi > lo)
+        # Only aggregates the rules can blank count: a window of `last` alone loses nothing.
+        blankable = bool(set(window.aggregations) - set(WHOLE_OR_NOT))
+        blanked = short & (hi > lo) & blankable
         mine = [(name, measurement, aggregation)
                 for name, w, measurement, aggregation in features if w == index]
         for measurement in dict.fromkeys(m for _, m, _ in mine):
@@ -401,7 +443,7 @@ def _window_features(
             values = prefix.aggregate(measurement, lo, hi, first, wanted)
             few = prefix.valid_count(measurement, lo, hi, first) < window.min_readings
             blank = short | few
-            blanked |= few & (hi > lo)
+            blanked |= few & (hi > lo) & blankable
             ours = [(name, aggregation) for name, m, aggregation in mine if m == measurement]
             for (name, aggregation), value in zip(ours, values, strict=True):
                 out[name] = value if aggregation in WHOLE_OR_NOT else np.where(blank, np.nan,

@@ -43,13 +43,13 @@ def group_cumsum(codes: np.ndarray, columns: dict[str, np.ndarray]) -> dict[str,
     """Cumulative sums restarting at each entity (rows sorted by entity), all columns at once."""
     if not columns:
         return {}
-    stacked = np.column_stack(list(columns.values())).astype(np.float64)
     if codes.size == 0 or codes[0] == codes[-1]:
         # One entity (the online path): a plain running sum, in the same order as pandas'.
-        summed = np.cumsum(stacked, axis=0)
-    else:
-        summed = pd.DataFrame(stacked).groupby(codes, sort=False).cumsum().to_numpy()
-    return {name: summed[:, i] for i, name in enumerate(columns)}
+        return {name: np.cumsum(values, dtype=np.float64) for name, values in columns.items()}
+    # Column by column: a table of every column at once would hold three copies of it.
+    grouper = pd.Series(codes)
+    return {name: pd.Series(values, dtype=np.float64).groupby(grouper, sort=False).cumsum()
+            .to_numpy() for name, values in columns.items()}
 
 
 def window_sum(cumulative: np.ndarray, lo: np.ndarray, hi: np.ndarray, start: np.ndarray
@@ -94,13 +94,15 @@ class Prefix:
     """Per-entity running sums of every measurement, shared by all windows.
 
     ``clock`` is the row time in the unit slopes are per, measured from the entity's first row
-    so the sums stay small. Values are centred on the entity's first valid value, so variances
+    so the sums stay small; ``squares`` names the measurements whose standard deviation is
+    wanted (all when not given). Values are centred on the entity's first valid value, so variances
     do not cancel away; both centres are fixed by the past only.
     """
 
     def __init__(
         self, codes: np.ndarray, values: dict[str, np.ndarray], clock: np.ndarray,
         limits: dict[str, set[tuple[str, float]]], slopes: set[str],
+        squares: set[str] | None = None,
     ) -> None:
         self.codes, self.values = codes, values
         columns: dict[str, np.ndarray] = {}
@@ -110,8 +112,9 @@ class Prefix:
             first = _first_valid(codes, x, valid)
             self.first[name] = first
             centred = np.where(valid, x - first, 0.0)
-            columns.update({(name, "n"): valid, (name, "x"): centred,  # type: ignore[dict-item]
-                            (name, "xx"): centred * centred})
+            columns.update({(name, "n"): valid, (name, "x"): centred})  # type: ignore[dict-item]
+            if squares is None or name in squares:  # only std needs sums of squares
+                columns[(name, "xx")] = centred * centred  # type: ignore[index]
             if name in slopes:
                 t = np.where(valid, clock, 0.0)
                 columns.update({(name, "t"): t, (name, "tt"): t * t,  # type: ignore[dict-item]

@@ -150,6 +150,8 @@ class DatasetSpec(Strict):
         """With a timeline section, every raw feature must be a column the build makes."""
         assert self.timeline is not None
         built = self.timeline.feature_names
+        kinds = self.timeline.actions.kinds if self.timeline.actions else ()
+        from_kind = {self.timeline.action_feature(kind): kind for kind in kinds}
         for index, feature in enumerate(self.features):
             used = ([feature.source_column] if not feature.derived
                     else sorted(parse_expression(feature.expr or "").names - raw))
@@ -158,6 +160,10 @@ class DatasetSpec(Strict):
                     continue
                 close = difflib.get_close_matches(column, built, n=1, cutoff=0.6)
                 hint = f" (did you mean {close[0]!r}?)" if close else ""
+                if close and close[0] in from_kind:
+                    # The feature may be right and the action kind misspelt: say both.
+                    hint = (f" (the timeline builds {close[0]!r} from actions.kinds "
+                            f"{from_kind[close[0]]!r}: fix whichever is misspelt)")
                 raise ValueError(
                     f"features[{index}]: {column!r} is not a column the timeline section "
                     f"builds{hint}; `causeline build --config <this file> --list-features` "

@@ -70,3 +70,31 @@ def test_build_command_writes_a_table_train_reads(tmp_path: Path, capsys) -> Non
     assert set(written["went_warm_24h"]) <= {0, 1}
     status = causeline(["build", "--config", str(CONFIG), "--readings", str(paths["readings"])])
     assert status == 2 and "--out" in capsys.readouterr().err
+
+
+def test_now_reads_only_recent_rows_and_equals_the_cadence_build() -> None:
+    # Scoring the fleet now keeps only the rows the windows read (and each state's last
+    # value); the row it builds must still equal the full build's row at that moment, state
+    # columns and time-since features included. Every case has a snapshot at 06:00 on day 80.
+    from causeline.service.features.snapshots import build_snapshots, current_features
+
+    frame = generate(cases=30, days=100, seed=8)
+    timeline = from_frame(frame)
+    inputs = TimelineInputs(timeline.readings, timeline.excursions, timeline.maintenance,
+                            timeline.cases)
+    config = load_config(CONFIG)
+    assert config.timeline is not None
+    built = build_snapshots(config.timeline, inputs)
+    moment = pd.Timestamp(frame["snapshot_time"].min()).normalize() + pd.Timedelta("80D 6h")
+    full = built[built["time"] == moment].set_index("case_id")
+    now = current_features(config, inputs, as_of=moment.isoformat())
+    scored = now.table.set_index("case_id")
+    assert len(full) == 30 and set(scored.index) | set(now.down["case_id"]) == set(full.index)
+    assert set(now.down["case_id"]) == set(full.index[full["snapshot_status"] == "down"])
+    for name in config.timeline.feature_names:
+        left, right = scored[name], full.loc[scored.index, name]
+        if left.dtype.kind in "fi":
+            np.testing.assert_allclose(left.to_numpy(float), right.to_numpy(float),
+                                       rtol=1e-9, atol=1e-9, err_msg=name)
+        else:
+            assert (left.astype(str) == right.astype(str)).all(), name

@@ -564,3 +564,25 @@ def test_now_is_each_entity_latest_known_moment() -> None:
     # As of 12:30 every pump with a reading by then is scored; p2's trip is still ahead.
     then = current_features(dataset, inputs, as_of="2025-05-01T12:30:00")
     assert list(then.table["pump"]) == ["p1", "p2", "p3"] and len(then.down) == 0
+
+
+def test_now_keeps_a_state_reported_once_long_ago() -> None:
+    # Scoring now reads only the rows its 4 h window needs, but a state column (firmware,
+    # reported once at the first reading) is copied as last seen: it must survive.
+    start = pd.Timestamp("2025-05-01")
+    readings = pd.DataFrame({"pump": "p1", "time": start + pd.to_timedelta(range(48), "h"),
+                             "flow": np.arange(48.0),
+                             "firmware": ["2.1", *([None] * 47)]})
+    dataset = DatasetSpec.model_validate({
+        "name": "pumps", "target": "y", "id": "id", "entity": "pump", "time": "time",
+        "features": [{"name": "flow__mean_4h", "role": "observable"},
+                     {"name": "firmware", "kind": "categorical", "role": "observable",
+                      "categories": ["2.1"]}],
+        "timeline": {"readings": {"entity": "pump", "time": "time", "measurements": ["flow"],
+                                  "states": ["firmware"]},
+                     "failures": {"entity": "pump", "time": "time", "optional": True},
+                     "horizon": "2h", "windows": [{"span": "4h", "aggregations": ["mean"]}]},
+    })
+    now = current_features(dataset, TimelineInputs(readings, None))
+    assert now.table["firmware"].tolist() == ["2.1"]
+    assert now.table["flow__mean_4h"].tolist() == [pytest.approx(np.mean([44, 45, 46, 47]))]
