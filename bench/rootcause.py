@@ -7,7 +7,13 @@ processes (peak of the largest worker, and peak of their sum). The data are writ
 cache folder (``CAUSELINE_BENCH_DIR``, default the temporary folder) as one Parquet file for the
 local engine and as a folder of 100,000-row Parquet files for the Dask engine, and reused.
 
-Usage: ``python bench/rootcause.py [ROWS ...]`` (default 100000 1000000).
+A second scenario has every row an event: a fresh simulation of the AI4I 2020 process
+(fixtures/ai4i2020/simulate.py) with the label set on every row, in one Parquet file written by
+pandas (one row group), grouped by a bundle trained on the public AI4I file: the local engine,
+and the Dask engine with 1 and with 2 local workers, on the same file.
+
+Usage: ``python bench/rootcause.py [ROWS ...] [--all-events N ...]`` (default 100000 1000000
+and, for all-events, 200000; docs/scaling.md gives a documented run at 1,000,000).
 """
 
 from __future__ import annotations
@@ -79,8 +85,52 @@ def _watch(command: list[str]) -> dict[str, float]:
             "worker_peak_rss_mib": worker_max / mib, "workers_peak_rss_sum_mib": workers_sum / mib}
 
 
+ALL_EVENTS = (200_000,)
+
+
+def all_events(folder: Path, rows: int) -> None:
+    """Every row an event, one Parquet file of one row group: both engines, 1 and 2 workers."""
+    from causeline.training.pipeline import train
+    from fixtures.ai4i2020.simulate import simulate
+
+    root = Path(__file__).resolve().parents[1] / "fixtures" / "ai4i2020"
+    bundle = folder / "ai4i-bundle"
+    if not (bundle / "manifest.json").exists():
+        train(root / "config.yaml", root / "ai4i2020.csv", bundle)
+    data = folder / f"ai4i-all-events-{rows}.parquet"
+    if not data.exists():
+        table = simulate(rows=rows, seed=41)
+        table["Machine failure"] = 1
+        table.to_parquet(data, index=False)
+    cli = [sys.executable, "-m", "causeline"]
+    report(f"rootcause_all_events_{rows}_rows", rows)
+    outs = {}
+    for name, extra in (("local", []), ("dask_1_worker", ["--engine", "dask", "--workers", "1"]),
+                        ("dask_2_workers", ["--engine", "dask", "--workers", "2"])):
+        out = folder / f"out-all-{rows}-{name}"
+        command = [*cli, "rootcause", "--bundle", str(bundle), "--events", str(data),
+                   "--out", str(out), "--quiet", *extra]
+        for key, value in _watch(command).items():
+            if name == "local" and key.startswith("worker"):
+                continue
+            report(f"rootcause_all_events_{rows}_{name}_{key}", float(value))
+        outs[name] = pd.read_csv(out / "event_groups.csv", usecols=["event_id", "group_id"])
+    local = outs["local"]
+    for name in ("dask_1_worker", "dask_2_workers"):
+        other = outs[name]
+        same = local["event_id"].tolist() == other["event_id"].tolist()
+        ari = adjusted_rand_score(local["group_id"], other["group_id"]) if same else float("nan")
+        report(f"rootcause_all_events_{rows}_groups_ari_local_vs_{name}", float(ari))
+
+
 def main(argv: list[str]) -> None:
-    sizes = [int(a) for a in argv] or list(SIZES)
+    everything = []
+    if "--all-events" in argv:
+        at = argv.index("--all-events")
+        everything = [int(a) for a in argv[at + 1:]]
+        argv = argv[:at]
+    sizes = [int(a) for a in argv] or (list(SIZES) if not everything else [])
+    everything = everything or ([] if argv else list(ALL_EVENTS))
     folder = Path(os.environ.get("CAUSELINE_BENCH_DIR") or tempfile.gettempdir())
     folder = folder / "causeline-bench-rootcause"
     folder.mkdir(parents=True, exist_ok=True)
@@ -110,6 +160,8 @@ def main(argv: list[str]) -> None:
         same = local["event_id"].tolist() == dask["event_id"].tolist()
         ari = adjusted_rand_score(local["group_id"], dask["group_id"]) if same else float("nan")
         report(f"rootcause_{rows}_groups_ari_local_vs_dask", float(ari))
+    for rows in everything:
+        all_events(folder, rows)
 
 
 if __name__ == "__main__":

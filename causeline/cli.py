@@ -91,6 +91,10 @@ def _parser() -> argparse.ArgumentParser:
         help="find the groups on at most N events with a cause (default 20000), drawn by a "
         "hash of their ids; the others join the nearest group",
     )
+    rootcause.add_argument(
+        "--quiet", action="store_true",
+        help="no progress on standard error (steps, rows done, rate, time left)",
+    )
     rootcause.set_defaults(run=_rootcause)
 
     serve = commands.add_parser(
@@ -236,11 +240,11 @@ def _rootcause(args: argparse.Namespace) -> int:
 
         result = run_rootcause_dask(
             load_bundle(args.bundle), args.events, args.out, options, _dask_settings(args),
-            progress=_progress,
+            progress=_progress(args),
         )
     else:
         result = run_rootcause(
-            load_bundle(args.bundle), source, args.out, options, progress=_progress
+            load_bundle(args.bundle), source, args.out, options, progress=_progress(args)
         )
     counts = result.summary["counts"]
     print(
@@ -278,22 +282,58 @@ def _engine_arguments(parser: argparse.ArgumentParser) -> None:
         help="Dask scheduler, e.g. tcp://host:8786 (default with --engine dask: a local cluster "
         "of 2 worker processes started for the run)",
     )
+    parser.add_argument(
+        "--partition-mb", type=float, metavar="MB",
+        help="with --engine dask: input per partition, as a table in memory (Parquet) or as "
+        "text (CSV); default 32. Smaller partitions need less memory per worker",
+    )
+    parser.add_argument(
+        "--workers", type=int, metavar="N",
+        help="with --engine dask and no --scheduler: worker processes of the local cluster "
+        "(default 2)",
+    )
+    parser.add_argument(
+        "--worker-memory", metavar="SIZE",
+        help="with --engine dask and no --scheduler: memory limit per local worker, e.g. 4GiB "
+        "(default 2GiB)",
+    )
+
+
+DASK_FLAGS = {"scheduler": "--scheduler", "partition_mb": "--partition-mb",
+              "workers": "--workers", "worker_memory": "--worker-memory"}
 
 
 def _use_dask(args: argparse.Namespace) -> bool:
-    if args.scheduler and args.engine != "dask":
-        raise CauselineError("--scheduler needs --engine dask")
+    if args.engine != "dask":
+        given = [flag for key, flag in DASK_FLAGS.items() if getattr(args, key) is not None]
+        if given:
+            raise CauselineError(f"{given[0]} needs --engine dask")
     return bool(args.engine == "dask")
 
 
 def _dask_settings(args: argparse.Namespace):  # type: ignore[no-untyped-def]
-    from causeline.service.dask.cluster import DaskSettings
+    from causeline.service.dask.cluster import DaskSettings, memory_size
 
-    return DaskSettings(scheduler=args.scheduler)
+    if args.scheduler and (args.workers is not None or args.worker_memory is not None):
+        raise CauselineError("--workers and --worker-memory size the local cluster; a cluster "
+                             "at --scheduler is sized where it is started")
+    if args.workers is not None and args.workers < 1:
+        raise CauselineError("--workers must be at least 1")
+    defaults = DaskSettings()
+    return DaskSettings(
+        scheduler=args.scheduler,
+        workers=args.workers or defaults.workers,
+        memory_limit=memory_size(args.worker_memory) if args.worker_memory
+        else defaults.memory_limit,
+        partition_mb=defaults.partition_mb if args.partition_mb is None else args.partition_mb,
+    )
 
 
-def _progress(message: str) -> None:
-    print(message, file=sys.stderr, flush=True)
+def _progress(args: argparse.Namespace):  # type: ignore[no-untyped-def]
+    """Where a long command says how far it is: standard error, unless --quiet."""
+    from causeline.service.progress import Console, Silent
+
+    return Silent() if getattr(args, "quiet", False) else Console(sys.stderr)
 
 
 def main(argv: Sequence[str] | None = None) -> int:

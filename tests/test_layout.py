@@ -39,7 +39,7 @@ ONLY_IN = {
     "dask": f"{SERVICE}.dask", "distributed": f"{SERVICE}.dask",
 }
 # Modules directly inside causeline.service that every subpackage may use.
-SHARED = {"errors"}
+SHARED = {"errors", "progress"}
 MAY_IMPORT = re.compile(r"^May import:\s*(.*?)\.?\s*$", re.MULTILINE)
 
 

@@ -73,7 +73,8 @@ def explain_partitions(
     """
     out = Path(out)
     kind = table_format(out)
-    source = read_partitions(input_path, [bundle.spec.id])
+    settings = settings or DaskSettings()
+    source = read_partitions(input_path, [bundle.spec.id], settings.partition_mb)
     bundle_path = str(Path(bundle.path).resolve())
     totals = ExplainTotals()
     rejects: list[pd.DataFrame] = []

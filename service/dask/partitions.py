@@ -15,9 +15,10 @@ from pathlib import Path
 from typing import Any
 
 import dask
-import dask.dataframe as dd
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 from dask.bytes import read_bytes
 
 from causeline.service.errors import DataError, first_line
@@ -28,7 +29,11 @@ from causeline.service.files.rejects import (
 )
 from causeline.service.files.tables import as_text, table_format
 
-CSV_BLOCK = "64MiB"
+# How much input one partition holds, in MB: CSV text, or a Parquet table once in memory
+# (measured on the file's first rows). docs/scaling.md gives what a worker needs per partition.
+PARTITION_MB = 32
+PROBE_ROWS = 2048  # rows read to measure a Parquet file's bytes per row in memory
+MIN_PARTITION_ROWS = 1_000
 
 
 def input_kind(path: Path | str) -> str:
@@ -84,38 +89,35 @@ class Partitions:
     kind: str
 
 
-def read_partitions(path: Path | str, text_columns: list[str]) -> Partitions:
+def read_partitions(path: Path | str, text_columns: list[str],
+                    partition_mb: float = PARTITION_MB) -> Partitions:
     """The input, lazily, one :class:`Block` at a time; ids stay text as in the local read.
 
+    Partitions are bounded by size, not by how the input was written: a Parquet file is cut
+    into row ranges of about ``partition_mb`` in memory whatever its row groups (a file written
+    in one row group gives several partitions), and CSV into blocks of ``partition_mb`` of text.
     A CSV block is read on its own, with the file's header line, exactly as the local reader
-    reads a whole file (:func:`causeline.service.files.rejects.lenient_text`): unreadable rows are
-    set aside and each block infers its own column types, so a column that is empty in the first
-    rows (where ``dask.dataframe.read_csv`` would guess a type for all blocks) reads as it does
-    locally.
-    Blocks end at line breaks, so cells must not hold line breaks.
+    reads a whole file (:func:`causeline.service.files.rejects.lenient_text`): unreadable rows
+    are set aside and each block infers its own column types, so a column that is empty in the
+    first rows (where ``dask.dataframe.read_csv`` would guess a type for all blocks) reads as it
+    does locally. Blocks end at line breaks, so cells must not hold line breaks.
     """
+    if not partition_mb > 0:
+        raise DataError(f"--partition-mb must be positive, not {partition_mb:g}")
     text = str(path)
     kind = input_kind(text)
-    files = sorted(glob.glob(text)) if not Path(text).exists() else [text]
-    if not files:
-        raise DataError(f"{path}: no such file, folder or matching files")
+    files = _files(text, kind)
     try:
         if kind == "parquet":
-            # Plain object strings, as pandas reads them locally: the features come out the same.
-            with dask.config.set({"dataframe.convert-string": False}):
-                frame = dd.read_parquet(files if len(files) > 1 else files[0])
-            parts: list[Any] = [
-                dask.delayed(_parquet_block)(part, text_columns)
-                for part in frame.to_delayed(optimize_graph=True)
-            ]
-            return Partitions(parts, list(frame.columns), kind)
+            return _parquet_partitions(files, text_columns, partition_mb)
         parts = []
         columns: list[str] = []
         for position, name in enumerate(files):
             with open(name, "rb") as handle:
                 header = handle.readline()
             columns = columns or next(csv.reader([header.decode("utf-8-sig")]))
-            _, blocks = read_bytes(name, delimiter=b"\n", blocksize=CSV_BLOCK, sample=False)
+            size = int(partition_mb * 2**20)
+            _, blocks = read_bytes(name, delimiter=b"\n", blocksize=size, sample=False)
             for number, block in enumerate(blocks[0]):
                 # Only the first file's own header line takes a number (line 1): a later file
                 # continues the first, and a later block gets the header only to be parsed.
@@ -123,9 +125,75 @@ def read_partitions(path: Path | str, text_columns: list[str]) -> Partitions:
                 parts.append(dask.delayed(_csv_block)(
                     block, header if number else b"", unnumbered, text_columns, name
                 ))
-    except (ValueError, OSError, UnicodeDecodeError) as exc:
+    except (ValueError, OSError, UnicodeDecodeError, pa.ArrowException) as exc:
         raise DataError(f"{path}: cannot be read as {kind}: {first_line(exc)}") from None
     return Partitions(parts, columns, kind)
+
+
+def _files(text: str, kind: str) -> list[str]:
+    """The files of a file, a glob or a folder (every Parquet file under it), in name order."""
+    if Path(text).is_dir():
+        files = sorted(str(p) for p in Path(text).rglob("*")
+                       if p.is_file() and p.suffix.lower() in (".parquet", ".pq"))
+    else:
+        files = sorted(glob.glob(text)) if not Path(text).exists() else [text]
+    if not files:
+        raise DataError(f"{text}: no such file, folder or matching {kind} files")
+    return files
+
+
+def _parquet_partitions(files: list[str], text_columns: list[str], partition_mb: float
+                        ) -> Partitions:
+    """Row ranges of every file, each about ``partition_mb`` once read into memory."""
+    parts: list[Any] = []
+    columns: list[str] = []
+    schema = None
+    for name in files:
+        handle = pq.ParquetFile(name)
+        if schema is None:
+            schema, columns = handle.schema_arrow, list(handle.schema_arrow.names)
+        elif list(handle.schema_arrow.names) != columns:
+            raise DataError(f"{name}: its columns differ from {files[0]}'s")
+        rows = handle.metadata.num_rows
+        step = max(MIN_PARTITION_ROWS, int(partition_mb * 2**20 / _bytes_per_row(handle)))
+        for start in range(0, rows, step):
+            parts.append(dask.delayed(_parquet_range)(name, start, min(rows, start + step),
+                                                      text_columns))
+    return Partitions(parts, columns, "parquet")
+
+
+def _bytes_per_row(handle: pq.ParquetFile) -> float:
+    """A table's size in memory per row, measured on the file's first rows (strings included)."""
+    if handle.metadata.num_rows == 0:
+        return 1.0
+    batch = next(handle.iter_batches(batch_size=PROBE_ROWS, use_threads=False))
+    frame = pa.Table.from_batches([batch]).to_pandas()
+    return max(float(frame.memory_usage(deep=True).sum()) / max(len(frame), 1), 1.0)
+
+
+def _parquet_range(name: str, start: int, stop: int, text_columns: list[str]) -> Block:
+    """On a worker: rows ``[start, stop)`` of a Parquet file as a :class:`Block`, read batch by
+    batch from the row groups that hold them, so no more than the range is kept."""
+    handle = pq.ParquetFile(name)
+    meta = handle.metadata
+    sizes = np.array([meta.row_group(g).num_rows for g in range(meta.num_row_groups)])
+    first_row = np.cumsum(sizes) - sizes
+    groups = [g for g in range(sizes.size)
+              if first_row[g] < stop and first_row[g] + sizes[g] > start]
+    pieces = []
+    position = int(first_row[groups[0]]) if groups else start
+    for batch in handle.iter_batches(batch_size=65_536, row_groups=groups, use_threads=False):
+        lo, hi = max(start - position, 0), min(stop - position, batch.num_rows)
+        if hi > lo:
+            pieces.append(batch.slice(lo, hi - lo))
+        position += batch.num_rows
+        if position >= stop:
+            break
+    frame = pa.Table.from_batches(pieces, schema=handle.schema_arrow).to_pandas()
+    table = as_text(frame.reset_index(drop=True), text_columns)
+    count = len(table)
+    return Block(table, np.arange(1, count + 1, dtype=np.int64), empty_rejects(table.columns),
+                 count)
 
 
 def _csv_block(
@@ -150,9 +218,3 @@ def _lines(data: bytes) -> int:
     return data.count(b"\n") + (1 if data and not data.endswith(b"\n") else 0)
 
 
-def _parquet_block(frame: pd.DataFrame, text_columns: list[str]) -> Block:
-    """On a worker: one Parquet partition as a :class:`Block`; Parquet has no broken rows."""
-    table = as_text(frame.reset_index(drop=True), text_columns)
-    count = len(table)
-    return Block(table, np.arange(1, count + 1, dtype=np.int64), empty_rejects(table.columns),
-                 count)

@@ -50,6 +50,7 @@ from causeline.service.dask.partitions import Block, joined_rejects, read_partit
 from causeline.service.errors import DataError
 from causeline.service.files.predlog import is_prediction_log
 from causeline.service.files.rejects import REASON, ROW
+from causeline.service.progress import Progress, Silent
 from causeline.service.rootcause.fix import Target
 from causeline.service.rootcause.grouping import (
     FIT_SAMPLE,
@@ -68,15 +69,16 @@ from causeline.service.rootcause.job import (
     RootCauseResult,
     SelectedEvents,
     finish_rootcause,
-    quiet,
     start_rootcause,
 )
 from causeline.service.rootcause.tally import (
     SEED,
     EventSlice,
+    Explained,
     Tally,
     avoidable_in_slice,
     event_frame,
+    kept_columns,
     tally_slice,
 )
 
@@ -166,8 +168,9 @@ def _select_part(
     mixes = _Sample.of(sample_keys(explanation.ids)[caused], rows, index, sample_size)
     mixes = replace(mixes, position=caused[mixes.position])
     part = EventSlice(
-        index=index, events=events, times=times[selected].reset_index(drop=True),
-        explanation=explanation, keys=event_keys, entity=spec.entity,
+        index=index, events=kept_columns(bundle, events),
+        times=times[selected].reset_index(drop=True),
+        explanation=Explained.of(explanation), keys=event_keys, entity=spec.entity,
         labels=np.full(len(events), -1, dtype=np.int64), strength=np.zeros(len(events)),
     )
     summary = _Summary(
@@ -193,7 +196,7 @@ def _label_part(selected: _Selected, profiles: np.ndarray, bundle_path: str) -> 
 
 
 def _tally_part(part: EventSlice, groups: int, bundle_path: str) -> Tally:
-    return tally_slice(part, groups, worker_explainer(bundle_path).catalogue)
+    return tally_slice(part, groups, worker_explainer(bundle_path))
 
 
 def _avoidable_part(
@@ -208,18 +211,21 @@ def run_rootcause_dask(
     out: Path,
     options: RootCauseOptions | None = None,
     settings: DaskSettings | None = None,
-    progress=quiet,  # type: ignore[no-untyped-def]
+    progress: Progress | None = None,
     reference_size: int = REFERENCE_SIZE,
 ) -> RootCauseResult:
     """The root-cause job on a Dask cluster; the same outputs as the local engine."""
     options = options or RootCauseOptions()
+    progress = progress or Silent()
     sample_size = options.fit_sample or FIT_SAMPLE
     out = Path(out)
     start = start_rootcause(out, options)
     if Path(events_path).is_dir() and is_prediction_log(Path(events_path)):
         raise DataError(f"{events_path}: a prediction log is read by --engine local only")
     spec = bundle.spec
-    source = read_partitions(events_path, [c for c in (spec.id, spec.entity) if c])
+    settings = settings or DaskSettings()
+    source = read_partitions(events_path, [c for c in (spec.id, spec.entity) if c],
+                             settings.partition_mb)
     if spec.id not in source.columns:
         raise DataError(f"{events_path}: no id column {spec.id!r}")
     bundle_path = str(Path(bundle.path).resolve())
@@ -237,8 +243,14 @@ def run_rootcause_dask(
         ]
         gathered = _Gathered(sample_size, reference_size, width, len(
             worker_explainer(bundle_path).catalogue.codes))
-        stream_ordered(client, [dask.delayed(_summary_of)(f) for f in selected],
-                       lambda _, summary: gathered.add(summary))
+        progress.start("reading and explaining", len(source.parts), "partitions")
+
+        def summarised(position: int, summary: _Summary) -> None:
+            gathered.add(summary)
+            progress.advance(position + 1, gathered.rows)
+
+        stream_ordered(client, [dask.delayed(_summary_of)(f) for f in selected], summarised)
+        progress.finish()
         selection = gathered.selection(source.columns, bundle.spec.time)
         mixes, with_cause = gathered.mixes, gathered.with_cause
         progress(f"step 4/{STEPS}: grouping {with_cause:,} events with a cause (profiles found "

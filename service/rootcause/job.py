@@ -31,6 +31,7 @@ from causeline.service.files.rejects import (
 from causeline.service.files.spreadsheet import escape_frame
 from causeline.service.files.storage import atomic_directory
 from causeline.service.files.tables import write_table
+from causeline.service.progress import Progress, Silent
 from causeline.service.rootcause import report as htmlreport
 from causeline.service.rootcause.fix import Target, fix_targets
 from causeline.service.rootcause.grouping import (
@@ -143,10 +144,6 @@ class RootCauseResult:
         return pd.read_csv(self.folder / EVENT_GROUPS, dtype=text)
 
 
-def quiet(message: str) -> None:
-    """The default progress sink: say nothing."""
-
-
 def start_rootcause(out: Path, options: RootCauseOptions) -> JobStart:
     """Check the options and the output folder before any work, so a bad flag fails at once."""
     _check_out(Path(out))
@@ -170,9 +167,10 @@ def finish_rootcause(
     selection: SelectedEvents,
     grouping: Grouping,
     slices: Slices,
-    progress=quiet,  # type: ignore[no-untyped-def]
+    progress: Progress | None = None,
 ) -> RootCauseResult:
     """Describe, track and write the groups: the part every engine shares."""
+    progress = progress or Silent()
     tally, rejects = grouping.tally, selection.rejects
     since, until = start.since, start.until
     catalogue = ReasonCatalogue(bundle.spec, bundle.manifest.stats)

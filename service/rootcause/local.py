@@ -16,6 +16,7 @@ from causeline.service.errors import DataError
 from causeline.service.explain.explainer import Explainer
 from causeline.service.features.logs import RawPaths
 from causeline.service.files.predlog import is_prediction_log
+from causeline.service.progress import Progress, Silent
 from causeline.service.rootcause.fix import Target
 from causeline.service.rootcause.grouping import (
     FIT_SAMPLE,
@@ -40,16 +41,36 @@ from causeline.service.rootcause.job import (
     RootCauseResult,
     SelectedEvents,
     finish_rootcause,
-    quiet,
     start_rootcause,
 )
 from causeline.service.rootcause.tally import (
     SEED,
     EventSlice,
+    Explained,
     avoidable_in_slice,
     event_frame,
+    kept_columns,
     tally_slice,
 )
+
+# Events explained at a time: a full explanation (reason objects) of this many stays small,
+# and the progress line moves.
+CHUNK = 50_000
+
+
+def explain_in_chunks(explainer: Explainer, events: pd.DataFrame, progress: Progress
+                      ) -> Explained:
+    """Every event explained, kept in the compact form later steps read."""
+    progress.start("explaining", len(events), "events")
+    pieces = []
+    for start in range(0, len(events), CHUNK):
+        chunk = events.iloc[start:start + CHUNK].reset_index(drop=True)
+        pieces.append(Explained.of(explainer.explain(chunk)))
+        progress.advance(start + len(chunk))
+    progress.finish()
+    if not pieces:
+        return Explained.of(explainer.explain(events))
+    return Explained.join(pieces)
 
 
 class LocalSlices:
@@ -72,11 +93,12 @@ def run_rootcause(
     events_path: Path | RawPaths,
     out: Path,
     options: RootCauseOptions | None = None,
-    progress=quiet,  # type: ignore[no-untyped-def]
+    progress: Progress | None = None,
 ) -> RootCauseResult:
     """Group the selected events (a table, a prediction log, or a timeline bundle's raw logs)
     and write the outputs into ``out``."""
     options = options or RootCauseOptions()
+    progress = progress or Silent()
     out = Path(out)
     start = start_rootcause(out, options)
     since, until = start.since, start.until
@@ -112,20 +134,20 @@ def run_rootcause(
 
     progress(f"step 3/{STEPS}: explaining {len(events):,} events")
     explainer = Explainer(bundle)
-    explanation = explainer.explain(events)
-    mix, has_cause = cause_mix(explanation.code_contributions, explainer.catalogue.causes)
+    explained = explain_in_chunks(explainer, events, progress)
+    mix, has_cause = cause_mix(explained.code_contributions, explainer.catalogue.causes)
     caused = np.flatnonzero(has_cause)
-    keys = sample_keys(explanation.ids)
+    keys = sample_keys(explained.ids)
     fit_sample = options.fit_sample or FIT_SAMPLE
     fit = caused[bottom(keys[caused], fit_sample)]
 
     progress(f"step 4/{STEPS}: grouping {caused.size:,} events with a cause "
              f"(profiles found on {fit.size:,})")
-    lift = cause_lift(explanation.code_contributions, explainer.catalogue.causes)
+    lift = cause_lift(explained.code_contributions, explainer.catalogue.causes)
     finder = GroupFinder(options.min_group_size).fit(mix[fit], keys[fit], caused.size, lift[fit])
     labels, strength = finder.assign(mix, has_cause)
     part = EventSlice(
-        index=0, events=events, times=times, explanation=explanation,
+        index=0, events=kept_columns(bundle, events), times=times, explanation=explained,
         keys=np.random.default_rng(SEED).random(len(events)), entity=bundle.spec.entity,
         labels=labels, strength=strength,
     )
@@ -137,6 +159,6 @@ def run_rootcause(
         foreseen=screened.foreseen,
     )
     grouping = Grouping(groups, {"engine": "local", **finder.parameters(fit.size, fit_sample)},
-                        tally_slice(part, groups, explainer.catalogue))
+                        tally_slice(part, groups, explainer))
     return finish_rootcause(bundle, events_path, out, options, start, selection, grouping,
                             LocalSlices(bundle, part, reference), progress)

@@ -24,7 +24,7 @@ import numpy as np
 import pandas as pd
 
 from causeline.service.bundle.load import Bundle
-from causeline.service.explain.explainer import Explanation
+from causeline.service.explain.explainer import Explainer, Explanation
 from causeline.service.explain.reasons import ReasonCatalogue, format_value
 from causeline.service.rootcause.fix import Target, events_avoidable
 from causeline.service.rootcause.grouping import (
@@ -44,6 +44,52 @@ SEED = 20240601
 
 
 @dataclass(frozen=True)
+class Explained:
+    """What the later steps use of a slice's explanation, as arrays and one text per event.
+
+    A full :class:`Explanation` holds Python objects per reason (a kilobyte or more per event);
+    a million events kept on workers between steps would not fit. Reason texts are rebuilt
+    for the few examples shown (:func:`tally_slice`), from the same rows and the same model.
+    """
+
+    ids: list[str]
+    probability: np.ndarray
+    code_contributions: np.ndarray
+    features: np.ndarray  # model-ready feature values
+    top_codes: list[str]  # "CODE_A; CODE_B", the ranked reason codes
+    warned: np.ndarray  # bool: the event carries a warning
+
+    @staticmethod
+    def join(pieces: list[Explained]) -> Explained:
+        """Explained slices of consecutive events, as one."""
+        return Explained(
+            ids=[i for piece in pieces for i in piece.ids],
+            probability=np.concatenate([p.probability for p in pieces]),
+            code_contributions=np.vstack([p.code_contributions for p in pieces]),
+            features=np.vstack([p.features for p in pieces]),
+            top_codes=[c for piece in pieces for c in piece.top_codes],
+            warned=np.concatenate([p.warned for p in pieces]),
+        )
+
+    @staticmethod
+    def of(explanation: Explanation) -> Explained:
+        return Explained(
+            ids=explanation.ids, probability=explanation.probability,
+            code_contributions=explanation.code_contributions,
+            features=explanation.features.values,
+            top_codes=["; ".join(r.code for r in reasons) for reasons in explanation.reasons],
+            warned=np.array([bool(w) for w in explanation.warnings], dtype=bool),
+        )
+
+
+def kept_columns(bundle: Bundle, events: pd.DataFrame) -> pd.DataFrame:
+    """The event columns later steps read (id, entity, time and the model's raw inputs)."""
+    spec = bundle.spec
+    wanted = [spec.id, spec.entity, spec.time, *bundle.builder.required_columns]
+    return events[[c for c in dict.fromkeys(wanted) if c and c in events.columns]]
+
+
+@dataclass(frozen=True)
 class EventSlice:
     """Selected events of one slice of the input, explained, with their grouping.
 
@@ -53,9 +99,9 @@ class EventSlice:
     """
 
     index: int
-    events: pd.DataFrame
+    events: pd.DataFrame  # the columns :func:`kept_columns` keeps
     times: pd.Series
-    explanation: Explanation
+    explanation: Explained
     keys: np.ndarray
     entity: str | None
     labels: np.ndarray
@@ -196,12 +242,13 @@ def _iso(stamp: pd.Timestamp | None) -> str:
     return "" if stamp is None else stamp.isoformat()
 
 
-def tally_slice(part: EventSlice, groups: int, catalogue: ReasonCatalogue) -> Tally:
+def tally_slice(part: EventSlice, groups: int, explainer: Explainer) -> Tally:
     """What one slice adds to every group's description."""
     explanation = part.explanation
+    catalogue = explainer.catalogue
     tally = Tally(groups, len(catalogue.codes), len(catalogue.feature_names))
     tally.events = len(part)
-    tally.warned = sum(1 for w in explanation.warnings if w)
+    tally.warned = int(explanation.warned.sum())
     known = part.times.dropna()
     tally.first_event = known.min() if len(known) else None
     tally.last_event = known.max() if len(known) else None
@@ -220,9 +267,9 @@ def tally_slice(part: EventSlice, groups: int, catalogue: ReasonCatalogue) -> Ta
             tally.first[g], tally.last[g] = times.min(), times.max()
         if entity is not None:
             tally.entities[g] = Counter(str(v) for v in entity.iloc[members] if pd.notna(v))
-        tally.examples[g] = _strongest(_example(part, row) for row in _top(part, members))
+        tally.examples[g] = _strongest(_examples(part, _top(part, members), explainer))
         tally.sample_keys[g], tally.sample_rows[g] = _bottom(
-            part.keys[members], explanation.features.values[members]
+            part.keys[members], explanation.features[members]
         )
     known = ~pd.isna(weeks)
     tally.weekly.update(zip(weeks[known], part.labels[known].tolist(), strict=True))
@@ -254,7 +301,7 @@ def event_frame(part: EventSlice, group_ids: list[str], ungrouped: str) -> pd.Da
         "group_id": names[np.where(part.labels >= 0, part.labels, len(group_ids))],
         "membership_strength": np.round(part.strength, 4),
         "probability": np.round(explanation.probability, 6),
-        "top_reason_codes": ["; ".join(r.code for r in reasons) for reasons in explanation.reasons],
+        "top_reason_codes": explanation.top_codes,
     }
     entity = _entity(part)
     if entity is not None:
@@ -298,15 +345,21 @@ def _top(part: EventSlice, members: np.ndarray) -> np.ndarray:
     return members[order[:EXAMPLES]]
 
 
-def _example(part: EventSlice, row: int) -> Example:
-    explanation = part.explanation
-    return Example(
-        strength=float(part.strength[row]),
-        order=(part.index, int(row)),
-        event_id=explanation.ids[row],
-        probability=float(explanation.probability[row]),
-        reasons=[(r.code, r.text, r.contribution) for r in explanation.reasons[row]],
-    )
+def _examples(part: EventSlice, rows: np.ndarray, explainer: Explainer) -> list[Example]:
+    """The members at ``rows`` shown in full: their reasons explained again, as they were."""
+    if rows.size == 0:
+        return []
+    again = explainer.explain(part.events.iloc[rows].reset_index(drop=True))
+    return [
+        Example(
+            strength=float(part.strength[row]),
+            order=(part.index, int(row)),
+            event_id=part.explanation.ids[row],
+            probability=float(part.explanation.probability[row]),
+            reasons=[(r.code, r.text, r.contribution) for r in reasons],
+        )
+        for row, reasons in zip(rows.tolist(), again.reasons, strict=True)
+    ]
 
 
 def _strongest(examples: Iterable[Example]) -> list[Example]:
