@@ -76,6 +76,7 @@ def dask_client(settings: DaskSettings | None = None) -> Iterator[Client]:
     block with one line saying what happened and what to change, never Dask's own message.
     """
     settings = settings or DaskSettings()
+    _quiet_cluster_logs()
     try:
         if settings.scheduler:
             timeout = settings.timeout or CONNECT_TIMEOUT
@@ -90,7 +91,6 @@ def dask_client(settings: DaskSettings | None = None) -> Iterator[Client]:
             with client:
                 yield client
             return
-        _quiet_cluster_logs()
         with LocalCluster(
             n_workers=settings.workers, threads_per_worker=1, processes=settings.processes,
             memory_limit=settings.memory_limit, dashboard_address=":0",
@@ -107,8 +107,11 @@ def _quiet_cluster_logs() -> None:
     this process and in the local workers it starts (they read the variable at start): the
     run's own line says what failed. DASK_LOGGING__DISTRIBUTED set by the user wins."""
     os.environ.setdefault("DASK_LOGGING__DISTRIBUTED", "critical")
-    logging.getLogger("distributed").setLevel(
-        os.environ["DASK_LOGGING__DISTRIBUTED"].upper())
+    level = os.environ["DASK_LOGGING__DISTRIBUTED"].upper()
+    # Dask's configuration gives some loggers levels of their own (distributed.client, say).
+    for name in ["distributed", *logging.root.manager.loggerDict]:
+        if name == "distributed" or name.startswith("distributed."):
+            logging.getLogger(name).setLevel(level)
 
 
 def cluster_failure(exc: BaseException, settings: DaskSettings) -> str:
@@ -124,7 +127,7 @@ def cluster_failure(exc: BaseException, settings: DaskSettings) -> str:
         return (f"a Dask worker died while working on a partition ({times}), most "
                 "likely out of memory: give smaller partitions (--partition-mb, now "
                 f"{settings.partition_mb:g}) or raise {memory}")
-    return (f"lost {where} while it was working ({type(exc).__name__}): check that it is "
+    return (f"lost {where} while it was working: check that it is "
             "still running and reachable, then run again; nothing was written")
 
 
