@@ -26,6 +26,18 @@ def _parser() -> argparse.ArgumentParser:
     )
     commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
+    draft = commands.add_parser(
+        "draft", help="write a first data-set config from your own table, to edit and train")
+    draft.add_argument("--data", required=True, type=Path, help="event table (CSV or Parquet)")
+    draft.add_argument("--target", required=True, help="the 0/1 event column")
+    draft.add_argument("--id", dest="id_column", help="row id column (default: the first "
+                       "column with a distinct value on every row)")
+    draft.add_argument("--time", help="event time column, if any")
+    draft.add_argument("--entity", help="equipment or unit column, if any")
+    draft.add_argument("--out", required=True, type=Path,
+                       help="config to write (YAML); never overwritten")
+    draft.set_defaults(run=_draft)
+
     train = commands.add_parser("train", help="train a bundle from a table of historical events")
     train.add_argument("--config", required=True, type=Path, help="data-set config (YAML)")
     train.add_argument("--data", type=Path, help="event table (CSV or Parquet)")
@@ -133,6 +145,19 @@ def _raw_paths(args: argparse.Namespace):  # type: ignore[no-untyped-def]
     return RawPaths(args.readings, args.failures, args.actions, args.attributes)
 
 
+def _draft(args: argparse.Namespace) -> int:
+    from causeline.training.draft import draft_config, write_draft
+
+    draft = draft_config(args.data, args.target, args.id_column, args.time, args.entity)
+    write_draft(draft, args.out)
+    print(f"draft: {len(draft.features)} features -> {args.out}")
+    for column in draft.left_out:
+        print(f"left out {column.column!r}: {column.left_out}")
+    print("next: edit the draft (units, roles, reason texts, fixes), then\n"
+          f"  causeline train --config {args.out} --data {args.data} --out bundle")
+    return 0
+
+
 def _build(args: argparse.Namespace) -> int:
     from causeline.training.build import build, describe_counts
     from causeline.training.config import load_timeline
@@ -180,6 +205,9 @@ def _train(args: argparse.Namespace) -> int:
     for note in result.notes:
         print(f"note: {note}")
     print(f"model card: {result.path / 'MODEL_CARD.md'}")
+    raw = " --readings ... --failures ..." if manifest.training.get("labels") else \
+        " --input new-events.csv"
+    print(f"explain new data: causeline explain --bundle {result.path}{raw} --out scores.csv")
     return 0
 
 

@@ -64,6 +64,8 @@ def train(config_path: Path, data_path: Path, out: Path) -> TrainResult:
     """Train on ``data_path`` as ``config_path`` describes and write the bundle to ``out``."""
     config = load_config(config_path)
     table = read_table(data_path, text_columns=[config.id])
+    if len(table) == 0:
+        raise DataError(f"{data_path}: the file has a header but no rows")
     manifest, model_text = fit_bundle(config, table, fingerprint=sha256_file(Path(data_path)))
     write_bundle(out, manifest, model_text)
     # Load what was written, so a bundle that would not load is never reported as trained.

@@ -114,6 +114,10 @@ def binary_column(column: pd.Series, name: str, role: str) -> np.ndarray:
     positive = text.isin(_TRUE).to_numpy(dtype=bool)
     bad = ~(positive | text.isin(_FALSE).to_numpy(dtype=bool))
     if bad.any():
-        example = column.iloc[int(np.flatnonzero(bad)[0])]
-        raise DataError(f"column {name!r} ({role}) is not binary: found {example!r}")
+        # Values as the file shows them (2, not np.int64(2)), with the values the column holds.
+        example = str(column.iloc[int(np.flatnonzero(bad)[0])])
+        held = sorted({str(v) for v in column.unique()[:1000]}, key=lambda v: (len(v), v))
+        shown = ", ".join(held[:6]) + (", ..." if len(held) > 6 else "")
+        raise DataError(f"column {name!r} ({role}) is not binary (0/1, true/false or yes/no): "
+                        f"found {example} (the column holds {shown})")
     return positive
