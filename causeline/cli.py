@@ -77,6 +77,12 @@ def _parser() -> argparse.ArgumentParser:
         action="store_true",
         help="add every feature's contribution and the base value",
     )
+    explain.add_argument(
+        "--what-to-change", type=int, nargs="?", const=2, metavar="N",
+        help="for events at or above the threshold, the cheapest change of at most N "
+        "controllable features (default 2) that brings them below it, as the config's "
+        "`change:` settings allow: a model estimate for qualified staff to review",
+    )
     _engine_arguments(explain)
     explain.set_defaults(run=_explain)
 
@@ -219,8 +225,13 @@ def _explain(args: argparse.Namespace) -> int:
     if args.top is not None and args.top < 1:
         raise CauselineError("--top must be at least 1")
     bundle = load_bundle(args.bundle)
+    if args.what_to_change is not None and args.what_to_change < 1:
+        raise CauselineError("--what-to-change takes the most features to change, at least 1")
     if _use_dask(args):
         from causeline.service.dask.explain import explain_partitions
+
+        if args.what_to_change:
+            raise CauselineError("--what-to-change runs on the local engine only so far")
 
         totals = explain_partitions(
             bundle, args.input, args.out, args.top, args.all_contributions, _dask_settings(args)
@@ -228,7 +239,7 @@ def _explain(args: argparse.Namespace) -> int:
     else:
         totals = explain_file(
             bundle, args.out, args.input, _raw_paths(args) if _has_raw_logs(args) else None,
-            args.top, args.all_contributions, args.latest, args.as_of,
+            args.top, args.all_contributions, args.latest, args.as_of, args.what_to_change,
         )
     print(f"explained: {totals.rows} events, {totals.flagged} at or above the threshold -> "
           f"{args.out}")

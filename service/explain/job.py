@@ -16,6 +16,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import CauselineError
@@ -59,17 +60,45 @@ class ExplainTotals:
 
 
 def rendered(
-    explanation: Explanation, explainer: Explainer, kind: str, all_contributions: bool
+    explanation: Explanation, explainer: Explainer, kind: str, all_contributions: bool,
+    changes: pd.DataFrame | None = None,
 ) -> Any:
-    """The explanation as its output kind holds it: JSON lines as text, else a table."""
+    """The explanation as its output kind holds it: JSON lines as text, else a table;
+    ``changes`` (one row per event) adds what to change."""
     bundle = explainer.bundle
     threshold = bundle.manifest.decision.threshold
     names = bundle.spec.feature_names
     if kind == "jsonl":
         records = explanation_records(explanation, threshold, names, all_contributions)
-        return "".join(json.dumps(r, ensure_ascii=False) + "\n" for r in records)
+        if changes is not None:
+            for record, change in zip(records, changes.to_dict("records"), strict=True):
+                record["what_to_change"] = change
+        return "".join(json.dumps(r, ensure_ascii=False, default=_plain) + "\n"
+                       for r in records)
     frame = explanation_frame(explanation, threshold, names, explainer.top_k, all_contributions)
+    if changes is not None:
+        frame = pd.concat([frame.reset_index(drop=True), changes], axis=1)
     return escape_frame(frame) if kind == "csv" else frame
+
+
+def _plain(value: Any) -> Any:
+    """NumPy scalars as JSON numbers; missing as null."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    return None if isinstance(value, float) and np.isnan(value) else value
+
+
+def what_to_change(bundle: Bundle, explanation: Explanation, max_changes: int) -> pd.DataFrame:
+    """Per event at or above the threshold, the cheapest allowed change that brings it below
+    (:mod:`causeline.service.actions.search`); empty for the others."""
+    from causeline.service.actions.search import Action, ActionFinder, action_frame
+
+    finder = ActionFinder(bundle, max_changes)
+    values = explanation.features.values
+    actions = [finder.find(values[row]) if flagged else Action([], 0.0, p, p, True)
+               for row, (flagged, p) in enumerate(zip(explanation.decision,
+                                                      explanation.probability, strict=True))]
+    return action_frame(actions)
 
 
 def explain_file(
@@ -81,6 +110,7 @@ def explain_file(
     all_contributions: bool = False,
     latest: bool = False,
     as_of: str | None = None,
+    changes: int | None = None,
 ) -> ExplainTotals:
     """Explain a table file, or the snapshots built from raw logs, into ``out``.
 
@@ -110,7 +140,8 @@ def explain_file(
         table = read.table
     explainer = Explainer(bundle, top_k=top)
     explanation = explainer.explain(table)
-    output = rendered(explanation, explainer, kind, all_contributions)
+    proposed = what_to_change(bundle, explanation, changes) if changes else None
+    output = rendered(explanation, explainer, kind, all_contributions, proposed)
     if kind == "jsonl":
         with atomic_file(out) as temporary, open(temporary, "w", encoding="utf-8") as handle:
             handle.write(output)

@@ -29,6 +29,30 @@ Kind = Literal["numeric", "categorical"]
 Direction = Literal["high", "low", "any"]
 
 
+class ChangeSpec(Strict):
+    """How a controllable feature may be changed when causeline proposes what to change.
+
+    Numeric: within ``[min, max]``, only in ``direction`` (``decrease``: days since a cleaning
+    can only be reset downwards), in multiples of ``step`` from the current value when given.
+    Categorical: to one of ``values``. A change costs ``cost`` plus ``cost_per_unit`` times how
+    far it moves. A controllable feature without a ``change`` is never moved.
+    """
+
+    min: float | None = None
+    max: float | None = None
+    direction: Literal["decrease", "increase", "both"] = "both"
+    step: float | None = Field(default=None, gt=0)
+    values: tuple[str, ...] | None = None
+    cost: float = Field(default=1.0, ge=0)
+    cost_per_unit: float = Field(default=0.0, ge=0)
+
+    @model_validator(mode="after")
+    def _check(self) -> ChangeSpec:
+        if self.min is not None and self.max is not None and self.min > self.max:
+            raise ValueError("min is above max")
+        return self
+
+
 class FeatureSpec(Strict):
     """One model input: a raw column, or an arithmetic expression over other columns."""
 
@@ -44,6 +68,7 @@ class FeatureSpec(Strict):
     # What a missing value means when it is a state, not a gap (say, "no alarm logged"):
     # reasons show these words and scoring raises no missing-value warning for it.
     missing_means: str = ""
+    change: ChangeSpec | None = None
 
     @model_validator(mode="after")
     def _check(self) -> FeatureSpec:
@@ -58,6 +83,29 @@ class FeatureSpec(Strict):
                 raise ValueError(str(exc)) from None
         if self.categories is not None and self.kind != "categorical":
             raise ValueError("categories are only for kind: categorical")
+        change = self.change
+        if change is not None:
+            if self.role != "controllable":
+                raise ValueError(f"change: only a controllable feature changes; this one is "
+                                 f"{self.role}")
+            if self.derived:
+                raise ValueError("change: a derived feature (expr) changes through the "
+                                 "features it reads")
+            if self.kind == "categorical":
+                numeric = [k for k in ("min", "max", "step", "cost_per_unit")
+                           if getattr(change, k) not in (None, 0.0)]
+                if numeric or change.direction != "both":
+                    raise ValueError("change: a categorical feature takes values (and cost), "
+                                     f"not {(numeric or ['direction'])[0]}")
+                if not change.values:
+                    raise ValueError("change.values: list the categories it may be set to")
+                if self.categories is not None:
+                    unknown = [v for v in change.values if v not in self.categories]
+                    if unknown:
+                        raise ValueError(f"change.values: {unknown[0]!r} is not one of its "
+                                         "categories")
+            elif change.values is not None:
+                raise ValueError("change.values: only for a categorical feature")
         return self
 
     @property
@@ -141,6 +189,15 @@ class DatasetSpec(Strict):
                             f"features[{index}].expr: {used!r} is derived; "
                             "expressions read raw columns and raw features only"
                         )
+        for index, feature in enumerate(self.features):
+            if feature.derived:
+                read = parse_expression(feature.expr or "").names
+                for other in self.features:
+                    if other.change is not None and other.name in read:
+                        raise ValueError(
+                            f"features[{index}].expr: reads {other.name!r}, which has a "
+                            "change; proposed changes move only features the model reads "
+                            "directly, so remove one of the two")
         if self.timeline is not None:
             self._check_built(raw)
         self._check_codes(set(names))
