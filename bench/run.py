@@ -8,8 +8,8 @@ import traceback
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
-BENCHMARKS = ["explain.py", "serving.py", "load.py", "fastshap.py", "timeline.py", "rootcause.py",
-              "grouping.py"]
+BENCHMARKS = ["explain.py", "actions.py", "serving.py", "load.py", "fastshap.py", "timeline.py",
+              "rootcause.py", "grouping.py"]
 
 
 def main() -> int:
