@@ -239,7 +239,7 @@ def _explain(args: argparse.Namespace) -> int:
     else:
         totals = explain_file(
             bundle, args.out, args.input, _raw_paths(args) if _has_raw_logs(args) else None,
-            args.top, args.all_contributions, args.latest, args.as_of, args.what_to_change,
+            args.top, args.all_contributions, args.latest, args.as_of, _changes(args, bundle),
         )
     print(f"explained: {totals.rows} events, {totals.flagged} at or above the threshold -> "
           f"{args.out}")
@@ -256,6 +256,15 @@ def _explain(args: argparse.Namespace) -> int:
 
         print(f"down (not scored): {totals.down} entities -> {down_path(args.out)}")
     return 0
+
+
+def _changes(args: argparse.Namespace, bundle):  # type: ignore[no-untyped-def]
+    """What --what-to-change adds to each explained event, or None without it."""
+    if not args.what_to_change:
+        return None
+    from causeline.service.actions.search import what_to_change
+
+    return lambda explanation: what_to_change(bundle, explanation, args.what_to_change)
 
 
 def _rootcause(args: argparse.Namespace) -> int:

@@ -25,6 +25,7 @@ import numpy as np
 import pandas as pd
 
 from causeline.service.bundle.load import Bundle
+from causeline.service.explain.explainer import Explanation
 from causeline.service.explain.score import calibrate
 from causeline.service.explain.treeparse import NUMERICAL, Forest, parse_forest
 from causeline.service.spec.dataset import ChangeSpec, FeatureSpec
@@ -188,6 +189,17 @@ def _nearest(start: float, stop: float, now: float, step: float | None) -> float
 def _batches(choices: list[list[_Option]]) -> list[list[tuple[_Option, ...]]]:
     combos = list(itertools.product(*choices))
     return [combos[i:i + BATCH] for i in range(0, len(combos), BATCH)]
+
+
+def what_to_change(bundle: Bundle, explanation: Explanation, max_changes: int) -> pd.DataFrame:
+    """Per event at or above the threshold, the cheapest allowed change that brings it below;
+    empty for the others. The columns :func:`action_frame` gives."""
+    finder = ActionFinder(bundle, max_changes)
+    values = explanation.features.values
+    actions = [finder.find(values[row]) if flagged else Action([], 0.0, p, p, True)
+               for row, (flagged, p) in enumerate(zip(explanation.decision,
+                                                      explanation.probability, strict=True))]
+    return action_frame(actions)
 
 
 def action_frame(actions: list[Action]) -> pd.DataFrame:

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -88,19 +89,6 @@ def _plain(value: Any) -> Any:
     return None if isinstance(value, float) and np.isnan(value) else value
 
 
-def what_to_change(bundle: Bundle, explanation: Explanation, max_changes: int) -> pd.DataFrame:
-    """Per event at or above the threshold, the cheapest allowed change that brings it below
-    (:mod:`causeline.service.actions.search`); empty for the others."""
-    from causeline.service.actions.search import Action, ActionFinder, action_frame
-
-    finder = ActionFinder(bundle, max_changes)
-    values = explanation.features.values
-    actions = [finder.find(values[row]) if flagged else Action([], 0.0, p, p, True)
-               for row, (flagged, p) in enumerate(zip(explanation.decision,
-                                                      explanation.probability, strict=True))]
-    return action_frame(actions)
-
-
 def explain_file(
     bundle: Bundle,
     out: Path,
@@ -110,14 +98,15 @@ def explain_file(
     all_contributions: bool = False,
     latest: bool = False,
     as_of: str | None = None,
-    changes: int | None = None,
+    changes: Callable[[Explanation], pd.DataFrame] | None = None,
 ) -> ExplainTotals:
     """Explain a table file, or the snapshots built from raw logs, into ``out``.
 
     Raw logs go through the same build as ``causeline build``, so scores match training's
     features exactly. ``latest`` scores each entity once, at the latest moment its logs know of
     (or at ``as_of``); entities that are down then are not scored but listed in
-    ``<out stem>.down.csv`` (:func:`down_path`).
+    ``<out stem>.down.csv`` (:func:`down_path`). ``changes`` adds columns per event (what to
+    change, from :mod:`causeline.service.actions`, which the command line passes in).
     """
     out = Path(out)
     kind = table_format(out)
@@ -140,7 +129,7 @@ def explain_file(
         table = read.table
     explainer = Explainer(bundle, top_k=top)
     explanation = explainer.explain(table)
-    proposed = what_to_change(bundle, explanation, changes) if changes else None
+    proposed = changes(explanation) if changes is not None else None
     output = rendered(explanation, explainer, kind, all_contributions, proposed)
     if kind == "jsonl":
         with atomic_file(out) as temporary, open(temporary, "w", encoding="utf-8") as handle:
