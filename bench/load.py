@@ -24,16 +24,9 @@ import subprocess  # noqa: E402
 import tempfile  # noqa: E402
 import threading  # noqa: E402
 
+from bench.client import Run, load, request_bytes  # noqa: E402
 from bench.common import demo_bundle, report  # noqa: E402
-from bench.serving import (  # noqa: E402
-    Run,
-    _events,
-    _free_port,
-    _load,
-    _request,
-    _wait_ready,
-    server_env,
-)
+from bench.serving import _events, _free_port, _wait_ready, server_env  # noqa: E402
 
 # Growth allowed from the end of the warm-up to the end of the run: 10 % of the warmed-up RSS or
 # 32 MiB, whichever is larger (allocator slack and the bounded log queue; a leak grows with load).
@@ -109,7 +102,7 @@ def main(argv: list[str] | None = None) -> int:
 
     scratch = Path(tempfile.mkdtemp(prefix="causeline-load-bench-"))
     bundle = args.bundle or demo_bundle(scratch / "demo")
-    requests = [_request({"events": [event]}) for event in _events(bundle)]
+    requests = [request_bytes({"events": [event]}) for event in _events(bundle)]
     port = _free_port()
     # Loopback only, so the reload endpoint may go without keys here.
     env = server_env(scratch, CAUSELINE_ADMIN_WITHOUT_KEYS="1")
@@ -121,17 +114,17 @@ def main(argv: list[str] | None = None) -> int:
     runs: dict[str, Run] = {}
     try:
         _wait_ready(port, server)
-        asyncio.run(_load(port, requests, 500, 30.0, max(levels)))  # warm-up
+        asyncio.run(load(port, requests, 500, 30.0, max(levels)))  # warm-up
         warmed = rss_mib(server.pid)
         with Sampler(server.pid) as memory:
             for level in levels:
                 runs[f"c{level}"] = asyncio.run(
-                    _load(port, requests, args.requests, args.seconds, level))
+                    load(port, requests, args.requests, args.seconds, level))
             stop = threading.Event()
             reloads, reloader = reloading(port, stop)
             try:
                 runs["swap_c8"] = asyncio.run(
-                    _load(port, requests, args.requests, args.seconds, 8))
+                    load(port, requests, args.requests, args.seconds, 8))
             finally:
                 stop.set()
                 reloader.join(60)

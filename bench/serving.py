@@ -1,12 +1,24 @@
-"""HTTP: single-event scoring with reason codes against a bare endpoint of the same framework.
+"""HTTP: single-event scoring with reason codes against a bare endpoint, driven by wrk.
 
 Starts two real servers on free loopback ports with the same uvicorn settings (worker count, no
-access log): ``causeline serve`` on the demo bundle, and a FastAPI app whose endpoint returns a
-constant JSON. Then sends each the same single-event requests from a small asyncio load generator
-(plain HTTP/1.1 keep-alive, ``--connections`` at a time, bounded by a request count and a time
-limit) and prints ``name: value`` lines: throughput, p50/p99 latency and the throughput ratio,
-the median over alternating rounds of each round's ratio, with every round's rate so drift
-shows.
+access log): ``causeline serve`` on the demo bundle (prediction log on), and a FastAPI app whose
+``async def`` endpoint reads the JSON body and answers a fixed result. wrk (C, one thread, a Lua
+script posting one event per request, rotating through 200 of the bundle's events) then drives
+each at 1, 8 and 32 connections. Rounds alternate between the servers, order flipped every
+round, so a slow spell of the machine falls on both; each round's ratio compares two runs made
+back to back. Printed as ``name: value`` lines, per connection count: requests per second, the
+ratio causeline/bare, p50, p99, p99.9 and max latency, failed requests (non-2xx answers and
+socket errors) and the cores each server used. Throughput and ratio are the worst round's (the
+lowest), latencies the worst round's (the highest); every round's figures are printed too.
+Last, a soak run drives causeline alone for ``--soak`` seconds and prints its resident memory
+as it goes, then whether the targets were met.
+
+wrk corrects its latencies for coordinated omission: a request that took T ms at a time when
+one usually takes t adds samples at T - t, T - 2t, ... (the requests a steady client would have
+sent meanwhile), so a rare long stall shows in p99, as callers with timeouts would see it.
+
+wrk is Debian's ``wrk`` package: when it is missing, this installs it with apt-get (as root),
+or stops with the command to run.
 """
 
 from __future__ import annotations
@@ -19,28 +31,38 @@ if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
 import argparse  # noqa: E402
-import asyncio  # noqa: E402
+import contextlib  # noqa: E402
 import json  # noqa: E402
 import os  # noqa: E402
+import re  # noqa: E402
+import shutil  # noqa: E402
 import socket  # noqa: E402
 import statistics  # noqa: E402
 import subprocess  # noqa: E402
 import tempfile  # noqa: E402
+import threading  # noqa: E402
 import time  # noqa: E402
-from dataclasses import dataclass, field  # noqa: E402
+from dataclasses import dataclass  # noqa: E402
 from typing import Any  # noqa: E402
+
+from fastapi import FastAPI, Request  # noqa: E402
 
 from bench.common import demo_bundle, report  # noqa: E402
 
+SERVERS = ("bare", "score")  # "score" is causeline serve
+UNITS = {"us": 1e-3, "ms": 1.0, "s": 1e3}
+
 
 def bare_app() -> Any:
-    """The baseline: the same framework answering a constant JSON, no work at all."""
-    from fastapi import FastAPI
+    """The baseline: the same framework reading the JSON body and answering a fixed result.
 
+    (``Request`` is imported at module level: FastAPI resolves the annotation there.)
+    """
     app = FastAPI()
 
     @app.post("/v1/score")
-    async def score() -> dict[str, bool]:
+    async def score(request: Request) -> dict[str, bool]:
+        await request.json()
         return {"ok": True}
 
     @app.get("/v1/health/ready")
@@ -50,86 +72,116 @@ def bare_app() -> Any:
     return app
 
 
+# ---------------------------------------------------------------- wrk
+
+
+def ensure_wrk() -> str:
+    """The wrk program; installs Debian's package first when it is missing and we may."""
+    found = shutil.which("wrk")
+    if found:
+        return found
+    command = ["apt-get", "install", "-y", "wrk"]
+    if os.geteuid() != 0 or shutil.which("apt-get") is None:
+        raise SystemExit("bench/serving.py needs wrk, the HTTP load generator: install it with "
+                         "`sudo apt-get install -y wrk` (Debian/Ubuntu) and run again")
+    print("# wrk is missing: installing Debian's package (apt-get install -y wrk)", flush=True)
+    quiet = {"stdout": subprocess.DEVNULL, "env": {**os.environ,
+                                                    "DEBIAN_FRONTEND": "noninteractive"}}
+    if subprocess.run(command, check=False, **quiet).returncode != 0:
+        subprocess.run(["apt-get", "update"], check=False, **quiet)
+        subprocess.run(command, check=False, **quiet)
+    found = shutil.which("wrk")
+    if not found:
+        raise SystemExit("could not install wrk; install it with `apt-get install -y wrk`")
+    return found
+
+
+def lua_script(bodies: list[str]) -> str:
+    """A wrk script posting ``bodies`` in turn; ``done`` prints counts and p99.9 and max."""
+    literals = ",\n".join(_lua_string(body) for body in bodies)
+    return f"""-- Written by bench/serving.py: one event per request, in turn.
+local bodies = {{
+{literals}
+}}
+local requests = {{}}
+local turn = 0
+
+function init(args)
+  for i, body in ipairs(bodies) do
+    requests[i] = wrk.format("POST", "/v1/score", {{["Content-Type"] = "application/json"}}, body)
+  end
+end
+
+function request()
+  turn = turn % #requests + 1
+  return requests[turn]
+end
+
+function done(summary, latency, requests)
+  local e = summary.errors
+  io.write(string.format(
+    "bench: requests=%d duration_us=%d connect=%d read=%d write=%d status=%d timeout=%d " ..
+    "p99_9_us=%d max_us=%d\\n",
+    summary.requests, summary.duration, e.connect, e.read, e.write, e.status, e.timeout,
+    latency:percentile(99.9), latency.max))
+end
+"""
+
+
+def _lua_string(text: str) -> str:
+    return '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
 @dataclass
-class Run:
-    """Latencies (seconds) and failures of one measured run."""
+class Round:
+    """One wrk run against one server."""
 
-    latencies: list[float] = field(default_factory=list)
-    errors: int = 0
-    seconds: float = 0.0
-
-    def percentile(self, share: float) -> float:
-        ordered = sorted(self.latencies)
-        if not ordered:
-            return float("nan")
-        return ordered[min(len(ordered) - 1, int(share * len(ordered)))]
-
-
-async def _read_response(reader: asyncio.StreamReader) -> tuple[int, bytes]:
-    head = await reader.readuntil(b"\r\n\r\n")
-    lines = head.decode("latin-1").split("\r\n")
-    status = int(lines[0].split()[1])
-    length = 0
-    for line in lines[1:]:
-        name, _, value = line.partition(":")
-        if name.strip().lower() == "content-length":
-            length = int(value.strip())
-    return status, await reader.readexactly(length)
+    rps: float
+    p50: float  # milliseconds, from wrk's --latency distribution
+    p99: float
+    p99_9: float  # from the script's done()
+    max: float
+    requests: int
+    failed: int  # non-2xx answers (wrk counts status > 399) and socket errors
+    cores: float  # the server's CPU seconds per second of the run
 
 
-async def _load(
-    port: int, requests: list[bytes], count: int, seconds: float, connections: int
-) -> Run:
-    run = Run()
-    remaining = count
-    stop_at = time.perf_counter() + seconds
-
-    async def connection(offset: int) -> None:
-        nonlocal remaining
-        reader, writer = await asyncio.open_connection("127.0.0.1", port)
-        sent = offset
-        try:
-            while remaining > 0 and time.perf_counter() < stop_at:
-                remaining -= 1
-                started = time.perf_counter()
-                writer.write(requests[sent % len(requests)])
-                sent += 1
-                status, _ = await _read_response(reader)
-                run.latencies.append(time.perf_counter() - started)
-                run.errors += status != 200
-        except (OSError, asyncio.IncompleteReadError, ValueError):
-            run.errors += 1  # a dropped connection or a broken answer: a failed request
-        finally:
-            writer.close()
-
-    started = time.perf_counter()
-    await asyncio.gather(*(connection(i) for i in range(connections)))
-    run.seconds = time.perf_counter() - started
-    return run
+def parse_wrk(output: str) -> dict[str, float]:
+    """Requests per second, --latency percentiles (ms) and the script's counts."""
+    values: dict[str, float] = {}
+    for share, number, unit in re.findall(r"^\s+(50|75|90|99)%\s+([\d.]+)(us|ms|s)\s*$",
+                                          output, re.M):
+        values[f"p{share}"] = float(number) * UNITS[unit]
+    rate = re.search(r"^Requests/sec:\s+([\d.]+)", output, re.M)
+    line = re.search(r"^bench: (.*)$", output, re.M)
+    if rate is None or line is None or "p99" not in values:
+        raise RuntimeError(f"unexpected wrk output:\n{output}")
+    values["rps"] = float(rate.group(1))
+    for pair in line.group(1).split():
+        name, _, number = pair.partition("=")
+        values[name] = float(number)
+    return values
 
 
-def _request(body: dict[str, Any]) -> bytes:
-    data = json.dumps(body).encode()
-    head = (
-        "POST /v1/score HTTP/1.1\r\nHost: 127.0.0.1\r\nContent-Type: application/json\r\n"
-        f"Content-Length: {len(data)}\r\n\r\n"
-    )
-    return head.encode() + data
+def run_wrk(wrk: str, port: int, connections: int, seconds: int, script: Path,
+            server_pid: int, cpus: set[int] | None = None) -> Round:
+    command = [wrk, "-t1", f"-c{connections}", f"-d{seconds}s", "--timeout", "2s", "--latency",
+               "-s", str(script), f"http://127.0.0.1:{port}/v1/score"]
+    cpu_before, started = _cpu_seconds(server_pid), time.perf_counter()
+    result = subprocess.run(command, capture_output=True, text=True, check=False,
+                            preexec_fn=(lambda: os.sched_setaffinity(0, cpus)) if cpus else None)
+    wall = time.perf_counter() - started
+    cores = (_cpu_seconds(server_pid) - cpu_before) / wall
+    if result.returncode != 0:
+        raise RuntimeError(f"wrk failed ({result.returncode}): {result.stderr.strip()}")
+    values = parse_wrk(result.stdout)
+    failed = sum(int(values[name]) for name in ("connect", "read", "write", "status", "timeout"))
+    return Round(rps=values["rps"], p50=values["p50"], p99=values["p99"],
+                 p99_9=values["p99_9_us"] / 1000, max=values["max_us"] / 1000,
+                 requests=int(values["requests"]), failed=failed, cores=cores)
 
 
-def _pin(processes: dict[str, subprocess.Popen[bytes]]) -> str:
-    """Servers on one CPU, this load generator on the others, the same for both servers.
-
-    Left to the scheduler, the generator and a server sometimes share a core and sometimes
-    not, which moved the bare endpoint's throughput by half from run to run.
-    """
-    cpus = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
-    if len(cpus) < 2:
-        return "no"
-    for process in processes.values():
-        os.sched_setaffinity(process.pid, {cpus[0]})
-    os.sched_setaffinity(0, set(cpus[1:]))
-    return str(cpus[0])
+# ---------------------------------------------------------------- servers
 
 
 def server_env(scratch: Path, **extra: str) -> dict[str, str]:
@@ -163,6 +215,43 @@ def _wait_ready(port: int, process: subprocess.Popen[bytes], seconds: float = 12
     raise SystemExit(f"server on port {port} did not become ready")
 
 
+def _family(pid: int) -> list[int]:
+    """A process and its descendants (uvicorn's workers when there are several)."""
+    out, queue = [], [pid]
+    while queue:
+        current = queue.pop()
+        out.append(current)
+        for task in Path(f"/proc/{current}/task").glob("*"):
+            with contextlib.suppress(OSError):
+                queue += [int(child) for child in (task / "children").read_text().split()]
+    return out
+
+
+def _cpu_seconds(pid: int) -> float:
+    """User and system CPU time of a server and its workers so far."""
+    total = 0.0
+    for member in _family(pid):
+        try:
+            fields = Path(f"/proc/{member}/stat").read_text().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        total += (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+    return total
+
+
+def rss_mb(pid: int) -> float:
+    """Resident memory of a server and its workers, in MiB."""
+    total = 0
+    for member in _family(pid):
+        try:
+            status = Path(f"/proc/{member}/status").read_text()
+        except OSError:
+            continue
+        found = re.search(r"^VmRSS:\s+(\d+) kB", status, re.M)
+        total += int(found.group(1)) if found else 0
+    return total / 1024
+
+
 def _mean_batch(port: int) -> float:
     """Events per explanation call, from the server's own metrics (batching at work)."""
     import httpx
@@ -193,21 +282,103 @@ def _events(bundle: Path, rows: int = 200) -> list[dict[str, Any]]:
     return json.loads(table[columns].tail(rows).to_json(orient="records"))
 
 
+def _cpus(pin: bool) -> tuple[set[int] | None, set[int] | None]:
+    """With ``pin``: the servers on the first CPU, wrk on the others (None: not pinned)."""
+    cpus = sorted(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else []
+    if not pin or len(cpus) < 2:
+        return None, None
+    return {cpus[0]}, set(cpus[1:])
+
+
+# ---------------------------------------------------------------- the run
+
+
+def soak(wrk: str, port: int, pid: int, seconds: int, script: Path,
+         cpus: set[int] | None) -> tuple[Round, list[tuple[float, float]]]:
+    """One long run at 8 connections, with the server's memory read every few seconds."""
+    samples: list[tuple[float, float]] = [(0.0, rss_mb(pid))]
+    finished = threading.Event()
+    started = time.perf_counter()
+
+    def sample() -> None:
+        while not finished.wait(max(1.0, seconds / 12)):
+            samples.append((time.perf_counter() - started, rss_mb(pid)))
+
+    sampler = threading.Thread(target=sample, daemon=True)
+    sampler.start()
+    try:
+        result = run_wrk(wrk, port, 8, seconds, script, pid, cpus)
+    finally:
+        finished.set()
+        sampler.join()
+    samples.append((time.perf_counter() - started, rss_mb(pid)))
+    return result, samples
+
+
+def summarise(connections: int, rounds: dict[str, list[Round]]) -> dict[str, float]:
+    """Print one connection count's lines; returns the worst figures for the target check."""
+    worst: dict[str, float] = {}
+    for name in SERVERS:
+        runs = rounds[name]
+        prefix = f"http_c{connections}_{name}"
+        report(f"{prefix}_rps", min(r.rps for r in runs))
+        report(f"{prefix}_rps_rounds", " ".join(f"{r.rps:.0f}" for r in runs))
+        for field, label in (("p50", "p50"), ("p99", "p99"), ("p99_9", "p99_9"), ("max", "max")):
+            value = max(getattr(r, field) for r in runs)
+            report(f"{prefix}_{label}_ms", value)
+            worst[f"{name}_{label}"] = value
+        report(f"{prefix}_p99_ms_rounds", " ".join(f"{r.p99:.2f}" for r in runs))
+        report(f"{prefix}_failed", sum(r.failed for r in runs))
+        report(f"{prefix}_requests", sum(r.requests for r in runs))
+        report(f"{prefix}_cores", statistics.median(r.cores for r in runs))
+        worst[f"{name}_failed"] = sum(r.failed for r in runs)
+    ratios = [s.rps / b.rps for b, s in zip(rounds["bare"], rounds["score"], strict=True)]
+    report(f"http_c{connections}_ratio", min(ratios))
+    report(f"http_c{connections}_ratio_median", statistics.median(ratios))
+    report(f"http_c{connections}_ratio_rounds", " ".join(f"{r:.3f}" for r in ratios))
+    worst["ratio"] = min(ratios)
+    return worst
+
+
+def targets(worst: dict[int, dict[str, float]]) -> None:
+    """The serving targets, judged on the worst round."""
+    def line(name: str, met: bool, text: str) -> None:
+        report(f"http_target_{name}", f"{'met' if met else 'NOT MET'} ({text})")
+
+    if 8 in worst:
+        w = worst[8]
+        line("c8_p99", w["score_p99"] <= 10.0, f"{w['score_p99']:.2f} ms <= 10 ms")
+        line("c8_ratio", w["ratio"] >= 0.8, f"{w['ratio']:.3f} >= 0.8")
+        line("c8_failed", w["score_failed"] == 0, f"{w['score_failed']:.0f} failed")
+    if 32 in worst:
+        w = worst[32]
+        limit = 4 * w["bare_p99"] + 10.0
+        line("c32_p99", w["score_p99"] <= limit, f"{w['score_p99']:.2f} ms <= 4 x "
+             f"{w['bare_p99']:.2f} + 10 = {limit:.2f} ms")
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--bundle", type=Path, help="bundle to serve (default: train the demo)")
     parser.add_argument("--workers", type=int, default=1)
-    parser.add_argument("--connections", type=int, default=8)
-    parser.add_argument("--requests", type=int, default=16000, help="per server, at most")
-    parser.add_argument("--seconds", type=float, default=40.0, help="per server, at most")
-    parser.add_argument("--rounds", type=int, default=16, help="alternating rounds per server")
+    parser.add_argument("--connections", default="1,8,32", help="comma-separated")
+    parser.add_argument("--seconds", type=int, default=5, help="per wrk run")
+    parser.add_argument("--rounds", type=int, default=4, help="alternating rounds per server")
+    parser.add_argument("--soak", type=int, default=60,
+                        help="seconds of the memory run at 8 connections (0: none)")
+    parser.add_argument("--pin", action="store_true",
+                        help="servers on the first CPU, wrk on the others")
     args = parser.parse_args(argv)
+    wrk = ensure_wrk()
+    counts = [int(part) for part in args.connections.split(",") if part.strip()]
 
     scratch = Path(tempfile.mkdtemp(prefix="causeline-http-bench-"))
     bundle = args.bundle or demo_bundle(scratch / "demo")
-    requests = [_request({"events": [event]}) for event in _events(bundle)]
+    script = scratch / "post.lua"
+    script.write_text(lua_script([json.dumps({"events": [event]})
+                                  for event in _events(bundle)]), "utf-8")
     env = server_env(scratch)
-    ports = {"bare": _free_port(), "score": _free_port()}
+    ports = {name: _free_port() for name in SERVERS}
     commands = {
         "bare": [sys.executable, "-m", "uvicorn", "bench.serving:bare_app", "--factory",
                  "--port", str(ports["bare"]), "--workers", str(args.workers),
@@ -215,62 +386,55 @@ def main(argv: list[str] | None = None) -> int:
         "score": [sys.executable, "-m", "causeline", "serve", "--bundle", str(bundle),
                   "--port", str(ports["score"]), "--workers", str(args.workers)],
     }
+    server_cpus, wrk_cpus = _cpus(args.pin)
     processes = {
-        name: subprocess.Popen(command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL)
+        name: subprocess.Popen(
+            command, cwd=ROOT, env=env, stdout=subprocess.DEVNULL,
+            preexec_fn=(lambda: os.sched_setaffinity(0, server_cpus)) if server_cpus else None)
         for name, command in commands.items()
     }
-    pinned = _pin(processes)
+    rounds: dict[int, dict[str, list[Round]]] = {c: {n: [] for n in SERVERS} for c in counts}
     try:
         for name, port in ports.items():
             _wait_ready(port, processes[name])
-            asyncio.run(_load(port, requests, 300, 30.0, args.connections))  # warm-up
-        # Rounds alternate between the two servers so that a slow spell of the machine falls
-        # on both, and the order flips every round (bare first, then score first) so that a
-        # machine getting steadily faster or slower favours neither.
-        rounds: dict[str, list[Run]] = {name: [] for name in ports}
+            run_wrk(wrk, port, 8, 2, script, processes[name].pid, wrk_cpus)  # warm-up
+        # Rounds alternate between the servers (order flipped every round), the connection
+        # counts inside each round, so that drift of the machine's speed falls on all alike.
         for number in range(args.rounds):
-            order = list(ports) if number % 2 == 0 else list(reversed(ports))
-            for name in order:
-                rounds[name].append(asyncio.run(_load(
-                    ports[name], requests, args.requests // args.rounds,
-                    args.seconds / args.rounds, args.connections,
-                )))
+            order = SERVERS if number % 2 == 0 else tuple(reversed(SERVERS))
+            for connections in counts:
+                for name in order:
+                    rounds[connections][name].append(run_wrk(
+                        wrk, ports[name], connections, args.seconds, script,
+                        processes[name].pid, wrk_cpus))
         batch = _mean_batch(ports["score"])
+        soaked = None
+        if args.soak > 0:
+            soaked = soak(wrk, ports["score"], processes["score"].pid, args.soak, script,
+                          wrk_cpus)
     finally:
         for process in processes.values():
             process.terminate()
         for process in processes.values():
-            process.wait(30)
+            process.wait(60)
+    report("http_wrk", f"{wrk}, 1 thread, {args.seconds} s per run")
     report("http_workers", str(args.workers))
-    report("http_connections", str(args.connections))
     report("http_rounds", str(args.rounds))
-    report("http_servers_pinned_to_cpu", pinned)
-    throughput = {}
-    for name, runs in rounds.items():
-        rates = [len(run.latencies) / run.seconds for run in runs]
-        throughput[name] = statistics.median(rates)
-        pooled = Run()
-        for run in runs:
-            pooled.latencies.extend(run.latencies)
-            pooled.errors += run.errors
-        report(f"http_{name}_requests", str(len(pooled.latencies)))
-        report(f"http_{name}_errors", str(pooled.errors))
-        report(f"http_{name}_throughput_rps", throughput[name])
-        report(f"http_{name}_rounds_rps", " ".join(f"{rate:.0f}" for rate in rates))
-        report(f"http_{name}_p50_ms", 1000 * pooled.percentile(0.50))
-        report(f"http_{name}_p99_ms", 1000 * pooled.percentile(0.99))
-    # The ratio is taken round by round: a round's two runs are back to back, within about a
-    # second, so a slower spell of the machine (this VM's speed drifts by up to 2x over
-    # minutes) touches both alike. The median over rounds is the result; the ratio of the two
-    # servers' median rates, which drift does move, is printed beside it.
-    paired = [
-        (len(s.latencies) / s.seconds) / (len(b.latencies) / b.seconds)
-        for b, s in zip(rounds["bare"], rounds["score"], strict=True)
-    ]
-    report("http_throughput_ratio", statistics.median(paired))
-    report("http_throughput_ratio_range", f"{min(paired):.3f}-{max(paired):.3f}")
-    report("http_throughput_ratio_of_median_rates", throughput["score"] / throughput["bare"])
+    report("http_pinned", "servers on CPU " + ",".join(map(str, sorted(server_cpus)))
+           if server_cpus else "no")
+    worst = {connections: summarise(connections, rounds[connections]) for connections in counts}
     report("http_score_mean_batch_events", batch)
+    if soaked is not None:
+        result, samples = soaked
+        report("http_soak_seconds", str(args.soak))
+        report("http_soak_rps", result.rps)
+        report("http_soak_p99_ms", result.p99)
+        report("http_soak_max_ms", result.max)
+        report("http_soak_failed", result.failed)
+        report("http_soak_rss_start_mb", samples[0][1])
+        report("http_soak_rss_end_mb", samples[-1][1])
+        report("http_soak_rss_mb", " ".join(f"{t:.0f}s={mb:.1f}" for t, mb in samples))
+    targets(worst)
     return 0
 
 

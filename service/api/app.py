@@ -17,11 +17,13 @@ import contextlib
 import signal
 import threading
 from collections.abc import AsyncIterator
+from typing import Any
 
 from fastapi import FastAPI
 from starlette.concurrency import run_in_threadpool
 
 from causeline.service.api import problems
+from causeline.service.api.fastpath import FastPath
 from causeline.service.api.limits import BodyLimitMiddleware
 from causeline.service.api.metrics import MetricsMiddleware
 from causeline.service.api.routers import admin, health, models, scoring
@@ -67,8 +69,19 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     for router in (scoring.router, models.router, health.router, admin.router):
         app.router.routes.extend(router.routes)
     app.add_middleware(BodyLimitMiddleware, max_bytes=settings.max_body_bytes)
+    # The scoring route's requests go past the layers in between (see fastpath.py).
+    app.add_middleware(FastPath, path=scoring.SCORE_PATH, endpoint=scoring.score,
+                       route=_route(app, scoring.SCORE_PATH, "POST"),
+                       max_bytes=settings.max_body_bytes, handlers=app.exception_handlers)
     app.add_middleware(MetricsMiddleware, metrics=service.metrics, routes=app.router.routes)
     return app
+
+
+def _route(app: FastAPI, path: str, method: str) -> Any:
+    for route in app.router.routes:
+        if getattr(route, "path", None) == path and method in getattr(route, "methods", ()):
+            return route
+    raise LookupError(f"no route {method} {path}")
 
 
 def app_from_environment() -> FastAPI:

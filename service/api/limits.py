@@ -24,7 +24,7 @@ class BodyLimitMiddleware:
         if scope["type"] != "http" or scope["method"] in {"GET", "HEAD", "OPTIONS"}:
             await self.app(scope, receive, send)
             return
-        declared = _content_length(scope)
+        declared = content_length(scope)
         if declared is not None and declared > self.max_bytes:
             await self._refuse(scope, receive, send)
             return
@@ -55,7 +55,8 @@ class BodyLimitMiddleware:
         await response(scope, receive, send)
 
 
-def _content_length(scope: Scope) -> int | None:
+def content_length(scope: Scope) -> int | None:
+    """The request's declared Content-Length, or None (absent or not a number)."""
     for name, value in scope.get("headers", ()):
         if name == b"content-length":
             try:

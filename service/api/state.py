@@ -12,6 +12,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from causeline.service.api import heap
 from causeline.service.api.auth import ApiKeys
 from causeline.service.api.batcher import Batcher, Job, Scored, log_records
 from causeline.service.api.bodies import LogStatus
@@ -80,6 +81,8 @@ class Service:
         reject = self.settings.unknown_fields == "reject"
         schemas = {name: EventSchema(m.bundle, reject) for name, m in served.models.items()}
         self.current = Current(served, schemas)  # the atomic swap: one reference
+        # The bundles are here for good: out of the collector's full passes (see heap.py).
+        heap.settle()
         self.metrics.set_models(served.versions())
         if previous is not None:
             self.metrics.reloads.inc()

@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import asyncio
+import gc
 import json
 import shutil
 import threading
+import weakref
 from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
@@ -773,6 +775,24 @@ def test_reload_swaps_a_good_bundle_and_refuses_a_tampered_one(
     text = client.get("/metrics", headers=key).text
     assert metric(text, "causeline_bundle_load_failures_total") == 1
     assert metric(text, "causeline_bundle_reloads_total") == 1
+
+
+def test_served_models_stay_out_of_the_collectors_passes(
+    make_client: Callable[..., TestClient],
+) -> None:
+    # gc.get_objects() lists the collector's generations, never the frozen objects.
+    def collected(obj: object) -> bool:
+        return any(o is obj for o in gc.get_objects())
+
+    client = make_client(admin_without_keys=True)
+    first, _ = client.app.state.service.current.pick(None)
+    assert not collected(first.explainer) and not collected(first.bundle.spec)
+    old = weakref.ref(first.explainer)
+    del first
+    assert client.post("/v1/admin/reload").status_code == 200
+    second, _ = client.app.state.service.current.pick(None)
+    assert not collected(second.explainer)
+    assert old() is None  # the swapped-out set is freed, frozen or not
 
 
 def test_request_in_flight_finishes_on_the_bundle_it_started_with(

@@ -23,6 +23,7 @@ from causeline.service.api.reading import all_contributions, openapi_request, re
 from causeline.service.api.timeline import online_event
 
 router = APIRouter(tags=["scoring"])
+SCORE_PATH = "/v1/score"
 _SCORING: dict[str, Any] = {
     "response_model": ScoreResponse,
     "responses": problems.responses(400, 401, 403, 413, 415, 422, 500),
@@ -30,7 +31,7 @@ _SCORING: dict[str, Any] = {
 _SECURITY = [bearer.scheme_name, api_key_header.scheme_name]
 
 
-@router.post("/v1/score", openapi_extra=openapi_request(ScoreRequest, _SECURITY), **_SCORING)
+@router.post(SCORE_PATH, openapi_extra=openapi_request(ScoreRequest, _SECURITY), **_SCORING)
 async def score(request: Request) -> Response:
     """Probability, decision and ranked reason codes for each event."""
     check_key(request)
