@@ -262,6 +262,10 @@ def _changes(args: argparse.Namespace, bundle):  # type: ignore[no-untyped-def]
     """What --what-to-change adds to each explained event, or None without it."""
     if not args.what_to_change:
         return None
+    if not any(f.change is not None for f in bundle.spec.features):
+        raise CauselineError("--what-to-change: the bundle's config gives no controllable "
+                             "feature a `change:` setting, so nothing may be changed (docs/"
+                             "config.md, What to change)")
     from causeline.service.actions.search import what_to_change
 
     return lambda explanation: what_to_change(bundle, explanation, args.what_to_change)

@@ -132,3 +132,16 @@ def test_change_settings_are_checked_with_the_key_named() -> None:
     with pytest.raises(ConfigError, match=r"min is above max"):
         validate_model(DatasetSpec, {k: v for k, v in base.items() if k != "training"},
                        "config.yaml")
+
+
+def test_what_to_change_needs_change_settings(tmp_path, capsys) -> None:  # type: ignore[no-untyped-def]
+    from causeline.cli import main
+
+    config = _config((1.0, 1.0), (0.0, 0.0), "both")
+    for feature in config["features"]:
+        feature.pop("change", None)
+    bundle = _bundle(tmp_path, 3, config)
+    code = main(["explain", "--bundle", str(bundle), "--input", str(tmp_path / "data.csv"),
+                 "--out", str(tmp_path / "out.csv"), "--what-to-change"])
+    assert code == 2 and "no controllable feature a `change:` setting" in capsys.readouterr().err
+    assert not (tmp_path / "out.csv").exists()
