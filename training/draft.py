@@ -29,7 +29,7 @@ LEAK_AUC = 0.98
 # Numeric features this correlated (|Spearman rho|) describe one thing: one reason code.
 TOGETHER = 0.9
 MAX_CATEGORIES = 50
-TYPICAL_SAMPLE = 200_000  # rows the correlations are measured on
+CORRELATION_SAMPLE = 200_000  # rows the correlations are measured on
 
 
 @dataclass
@@ -171,7 +171,7 @@ def _directions(table: pd.DataFrame, y: np.ndarray, features: list[Column]) -> N
 def _correlated(table: pd.DataFrame, numeric: list[Column]) -> list[list[Column]]:
     """Numeric features in groups whose members correlate at |rho| >= TOGETHER with the
     group's first member (linked in table order), each feature in one group."""
-    sample = table.sample(min(len(table), TYPICAL_SAMPLE), random_state=0)
+    sample = table.sample(min(len(table), CORRELATION_SAMPLE), random_state=0)
     frame = pd.DataFrame({c.name: sample[c.column].astype(float).to_numpy() for c in numeric})
     rho = frame.corr(method="spearman").abs() if len(numeric) > 1 else None
     groups: list[list[Column]] = []

@@ -54,6 +54,10 @@ class Action:
     reached: bool
 
 
+# A combination found: its total cost, the probability after, and (feature, option) pairs.
+_Found = tuple[float, float, tuple[tuple[int, "_Option"], ...]]
+
+
 @dataclass(frozen=True)
 class _Option:
     """One value a feature may take, as the model sees it (a number or a category code)."""
@@ -85,28 +89,17 @@ class ActionFinder:
         if before < target or not self.movable:
             return Action([], 0.0, before, before, before < target)
         options = {i: self._options(i, spec, row[i]) for i, spec in self.movable}
-        best: tuple[float, float, tuple[tuple[int, _Option], ...]] | None = None
-        fallback: tuple[float, float, tuple[tuple[int, _Option], ...]] | None = None
+        best: _Found | None = None
+        fallback: _Found | None = None
         for size in range(1, min(self.max_changes, len(self.movable)) + 1):
             for features in itertools.combinations([i for i, _ in self.movable], size):
                 choices = [options[i] for i in features]
-                if not all(choices):
-                    continue
-                for combos in _batches(choices):
-                    grid = np.repeat(row[None, :], len(combos), axis=0)
-                    for column, i in enumerate(features):
-                        grid[:, i] = [combo[column].value for combo in combos]
-                    p = self._probability(grid)
-                    costs = np.array([sum(o.cost for o in combo) for combo in combos])
-                    for k in np.flatnonzero(p < target):
-                        key = (float(costs[k]), float(p[k]))
-                        if best is None or key < best[:2]:
-                            best = (*key, tuple(zip(features, combos[k], strict=True)))
-                    k = int(np.argmin(p))
-                    if fallback is None or (float(p[k]), float(costs[k])) < (fallback[1],
-                                                                              fallback[0]):
-                        fallback = (float(costs[k]), float(p[k]),
-                                    tuple(zip(features, combos[k], strict=True)))
+                if all(choices):
+                    reached, lowest = self._score(row, features, choices, target)
+                    if reached is not None and (best is None or reached[:2] < best[:2]):
+                        best = reached
+                    if fallback is None or (lowest[1], lowest[0]) < (fallback[1], fallback[0]):
+                        fallback = lowest
         chosen = best or fallback
         if chosen is None or chosen[1] >= before:
             # Nothing allowed lowers the risk at all: no change to propose.
@@ -115,6 +108,33 @@ class ActionFinder:
         changes = [Change(self.names[i], self._shown(i, row[i]), option.shown)
                    for i, option in picks]
         return Action(changes, cost, before, after, best is not None)
+
+    def _score(self, row: np.ndarray, features: tuple[int, ...],
+               choices: list[list[_Option]], target: float) -> tuple[_Found | None, _Found]:
+        """Every combination of one option per feature: the cheapest that reaches ``target``
+        (ties: lower probability; then the first), and the one with the lowest probability."""
+        values = [np.array([o.value for o in c]) for c in choices]
+        costs = [np.array([o.cost for o in c]) for c in choices]
+        grids = np.meshgrid(*[np.arange(len(c)) for c in choices], indexing="ij")
+        picks = np.stack(grids, axis=-1).reshape(-1, len(features))
+        p = np.empty(len(picks))
+        for start in range(0, len(picks), BATCH):  # bounded memory per prediction
+            batch = picks[start:start + BATCH]
+            grid = np.repeat(row[None, :], len(batch), axis=0)
+            for column, i in enumerate(features):
+                grid[:, i] = values[column][batch[:, column]]
+            p[start:start + len(batch)] = self._probability(grid)
+        cost = sum(costs[column][picks[:, column]] for column in range(len(features)))
+
+        def found(k: int) -> _Found:
+            chosen = tuple((i, choices[column][picks[k, column]])
+                           for column, i in enumerate(features))
+            return float(cost[k]), float(p[k]), chosen
+
+        reach = np.flatnonzero(p < target)
+        reached = found(int(reach[np.lexsort((p[reach], cost[reach]))[0]])) if reach.size \
+            else None
+        return reached, found(int(np.argmin(p)))
 
     def _probability(self, rows: np.ndarray) -> np.ndarray:
         raw = self.bundle.booster.predict(rows, raw_score=True)
@@ -184,11 +204,6 @@ def _nearest(start: float, stop: float, now: float, step: float | None) -> float
     k = np.ceil((start - now) / step) if now < start else np.floor((stop - now) / step)
     value = now + k * step
     return float(value) if start <= value <= stop else None
-
-
-def _batches(choices: list[list[_Option]]) -> list[list[tuple[_Option, ...]]]:
-    combos = list(itertools.product(*choices))
-    return [combos[i:i + BATCH] for i in range(0, len(combos), BATCH)]
 
 
 def what_to_change(bundle: Bundle, explanation: Explanation, max_changes: int) -> pd.DataFrame:

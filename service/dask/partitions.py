@@ -146,26 +146,25 @@ def _parquet_partitions(files: list[str], text_columns: list[str], partition_mb:
                         ) -> Partitions:
     """Row ranges of every file, each about ``partition_mb`` once read into memory."""
     parts: list[Any] = []
-    columns: list[str] = []
-    schema = None
+    columns: list[str] | None = None
+    step = 0  # rows per partition, measured once on the first file with rows: same columns
     for name in files:
         handle = pq.ParquetFile(name)
-        if schema is None:
-            schema, columns = handle.schema_arrow, list(handle.schema_arrow.names)
+        if columns is None:
+            columns = list(handle.schema_arrow.names)
         elif list(handle.schema_arrow.names) != columns:
             raise DataError(f"{name}: its columns differ from {files[0]}'s")
         rows = handle.metadata.num_rows
-        step = max(MIN_PARTITION_ROWS, int(partition_mb * 2**20 / _bytes_per_row(handle)))
-        for start in range(0, rows, step):
+        if not step and rows:
+            step = max(MIN_PARTITION_ROWS, int(partition_mb * 2**20 / _bytes_per_row(handle)))
+        for start in range(0, rows, step or 1):
             parts.append(dask.delayed(_parquet_range)(name, start, min(rows, start + step),
                                                       text_columns))
-    return Partitions(parts, columns, "parquet")
+    return Partitions(parts, columns or [], "parquet")
 
 
 def _bytes_per_row(handle: pq.ParquetFile) -> float:
     """A table's size in memory per row, measured on the file's first rows (strings included)."""
-    if handle.metadata.num_rows == 0:
-        return 1.0
     batch = next(handle.iter_batches(batch_size=PROBE_ROWS, use_threads=False))
     frame = pa.Table.from_batches([batch]).to_pandas()
     return max(float(frame.memory_usage(deep=True).sum()) / max(len(frame), 1), 1.0)

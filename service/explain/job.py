@@ -72,21 +72,15 @@ def rendered(
     if kind == "jsonl":
         records = explanation_records(explanation, threshold, names, all_contributions)
         if changes is not None:
-            for record, change in zip(records, changes.to_dict("records"), strict=True):
+            # Python values, missing as None: JSON has no NaN.
+            plain = changes.astype(object).where(changes.notna(), None)
+            for record, change in zip(records, plain.to_dict("records"), strict=True):
                 record["what_to_change"] = change
-        return "".join(json.dumps(r, ensure_ascii=False, default=_plain) + "\n"
-                       for r in records)
+        return "".join(json.dumps(r, ensure_ascii=False) + "\n" for r in records)
     frame = explanation_frame(explanation, threshold, names, explainer.top_k, all_contributions)
     if changes is not None:
         frame = pd.concat([frame.reset_index(drop=True), changes], axis=1)
     return escape_frame(frame) if kind == "csv" else frame
-
-
-def _plain(value: Any) -> Any:
-    """NumPy scalars as JSON numbers; missing as null."""
-    if isinstance(value, np.generic):
-        value = value.item()
-    return None if isinstance(value, float) and np.isnan(value) else value
 
 
 def explain_file(

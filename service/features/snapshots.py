@@ -81,7 +81,7 @@ def build_snapshots(
     failures = event_log(spec.failures.entity, spec.failures.time, inputs.failures, "failures",
                          names, clock, failure_filter(spec))
     # Coverage counts from each entity's first reading ever, whatever rows are kept below.
-    origin = times[np.minimum(start, max(codes.size - 1, 0))] if codes.size else times
+    origin = times[start]
     if isinstance(at, str) and at == NOW:
         snap_codes, snap_times = _now(clock, codes, times, start, failures, as_of)
         # One snapshot per entity reads only its latest rows: keep those, not the year.

@@ -38,7 +38,7 @@ three domains and on the public AI4I file (``bench/grouping.py``; README, root-c
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import hdbscan
@@ -68,7 +68,6 @@ LEADING_CODES = 3
 TOP_ENTITIES = 5
 EXAMPLES = 3
 
-Progress = Callable[[str], None]
 
 
 def default_min_group_size(events: int) -> int:

@@ -145,3 +145,21 @@ def test_what_to_change_needs_change_settings(tmp_path, capsys) -> None:  # type
                  "--out", str(tmp_path / "out.csv"), "--what-to-change"])
     assert code == 2 and "no controllable feature a `change:` setting" in capsys.readouterr().err
     assert not (tmp_path / "out.csv").exists()
+
+
+def test_json_lines_say_null_where_no_change_is_proposed(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # JSON (RFC 8259) has no NaN: an event below the threshold has no cost and no probability
+    # after a change, and the record must say null for them.
+    import json
+
+    from causeline.cli import main
+
+    bundle = _bundle(tmp_path, 5, _config((1.0, 1.0), (0.0, 0.0), "both"))
+    out = tmp_path / "out.jsonl"
+    assert main(["explain", "--bundle", str(bundle), "--input", str(tmp_path / "data.csv"),
+                 "--out", str(out), "--what-to-change"]) == 0
+    text = out.read_text("utf-8")
+    assert "NaN" not in text
+    records = [json.loads(line)["what_to_change"] for line in text.splitlines()]
+    assert any(r["change_cost"] is None for r in records)
+    assert any(r["change"] for r in records)
