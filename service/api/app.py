@@ -22,7 +22,7 @@ from typing import Any
 from fastapi import FastAPI
 from starlette.concurrency import run_in_threadpool
 
-from causeline.service.api import problems
+from causeline.service.api import document, problems
 from causeline.service.api.fastpath import FastPath
 from causeline.service.api.limits import BodyLimitMiddleware
 from causeline.service.api.metrics import MetricsMiddleware
@@ -61,6 +61,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         lifespan=lifespan,
     )
     app.state.service = service
+    document.install(app, service)
     app.router.redirect_slashes = False  # /v1/score/ gets a 404 problem, not an empty 307
     problems.install(app)
     # The routers' routes join the app's own list. FastAPI's include_router keeps an included

@@ -19,7 +19,9 @@ class ScoreRequest(BaseModel):
     )
     events: list[dict[str, Any]] = Field(
         min_length=1,
-        description="each event maps field name to a number, a string (categories, id) or null",
+        description="each event maps field name to a number, a string (categories, id) or null; "
+        "the fields of each served model are in this document's Event-* schemas and at "
+        "GET /v1/models/{name}",
     )
 
 
@@ -80,6 +82,11 @@ class EventResult(BaseModel):
 class ScoreResponse(BaseModel):
     model: ModelRef
     results: list[EventResult]
+    ignored_fields: list[str] = Field(
+        default_factory=list,
+        description="fields the events carried that the model does not use, left out of "
+        "scoring (setting CAUSELINE_UNKNOWN_FIELDS=reject refuses them instead)",
+    )
 
 
 class ModelSummary(BaseModel):

@@ -8,6 +8,7 @@ field.
 
 from __future__ import annotations
 
+import difflib
 import math
 from collections.abc import Mapping, Sequence
 from typing import Any
@@ -24,10 +25,17 @@ MAX_TEXT = 256  # ids, times and entities; and field names echoed in errors
 
 
 class EventSchema:
-    """Required and optional fields of an event, with the JSON type each takes."""
+    """Required and optional fields of an event, with the JSON type each takes.
+
+    A field the bundle does not use is refused with ``reject_unknown``; otherwise it is left
+    out of scoring and named in the answer (:meth:`ignored`), so callers can send whole records.
+    Either way a field that looks like a misspelling of one the event lacks (same name but for
+    case, or close by :mod:`difflib`'s ratio) is refused, so a typo is never silently dropped.
+    """
 
     def __init__(self, bundle: Bundle, reject_unknown: bool = True) -> None:
         spec = bundle.spec
+        self.bundle = bundle
         self.id_field = spec.id
         self.required = list(bundle.builder.required_columns)
         categorical = {f.source_column for f in spec.features if f.kind == "categorical"}
@@ -45,11 +53,9 @@ class EventSchema:
         """Unknown and missing fields, wrong JSON types, NaN and Infinity tokens."""
         errors: list[FieldError] = []
         for index, event in enumerate(events):
-            if self.reject_unknown and not self.known.issuperset(event):
-                errors += [
-                    FieldError(event=index, field=str(name)[:MAX_TEXT], message="unknown field")
-                    for name in event if name not in self.known
-                ]
+            if not self.known.issuperset(event):
+                errors += [FieldError(event=index, field=name, message=message) for name, message
+                           in unknown_fields(event, self.known, self.reject_unknown)]
             for name in self.required:
                 value = event.get(name, _ABSENT)
                 # The common cases first, cheaply: null, a finite number where a number
@@ -81,6 +87,70 @@ class EventSchema:
                     message = f"longer than {MAX_TEXT} characters"
                     errors.append(FieldError(event=index, field=name, message=message))
         return errors
+
+    def ignored(self, events: Sequence[Mapping[str, Any]]) -> list[str]:
+        """Fields the events carry that the bundle does not use, each once, in order met."""
+        found: dict[str, None] = {}
+        for event in events:
+            if not self.known.issuperset(event):
+                found.update((str(name)[:MAX_TEXT], None) for name in event
+                             if name not in self.known)
+        return list(found)
+
+    def json_schema(self) -> dict[str, Any]:
+        """The event as JSON Schema: each field's type, categories, unit and training range,
+        which fields are required, and whether others may come along."""
+        spec = self.bundle.spec
+        stats = self.bundle.manifest.stats
+        readers: dict[str, list[Any]] = {}
+        for feature in spec.features:
+            if not feature.derived:
+                readers.setdefault(feature.source_column, []).append(feature)
+        properties: dict[str, Any] = {}
+        for name in self.required:
+            features = readers.get(name, [])
+            nullable = all(f.allow_missing for f in features)
+            if name in self.text:
+                field: dict[str, Any] = {"type": ["string", "null"] if nullable else "string"}
+                known = [c for f in features if (st := stats.get(f.name)) and st.categories
+                         for c in st.categories]
+                if known:
+                    field["enum"] = [*dict.fromkeys(known), *([None] if nullable else [])]
+            else:
+                field = {"type": ["number", "null"] if nullable else "number",
+                         "minimum": -LARGEST, "maximum": LARGEST}
+            words = []
+            for feature in features:
+                unit = f" ({feature.unit})" if feature.unit else ""
+                words.append(f"{feature.description or feature.name}{unit}")
+                st = stats.get(feature.name)
+                if st is not None and st.minimum is not None and st.maximum is not None:
+                    words.append(f"training range {st.minimum:g} to {st.maximum:g}")
+            if not features:
+                words.append("read by a derived feature")
+            if nullable:
+                words.append("null for an unknown value")
+            field["description"] = "; ".join(words)
+            properties[name] = field
+        for name in self.optional:
+            role = {spec.id: "event id", spec.time: "event time",
+                    spec.entity: "equipment or unit"}.get(name, name)
+            # Whole numbers are taken too and read as text; the document keeps to text.
+            properties[name] = {"type": ["string", "null"], "maxLength": MAX_TEXT,
+                                "description": f"{role} (optional)"}
+        return {
+            "type": "object",
+            "title": f"Event for {self.bundle.name}",
+            "properties": properties,
+            "required": list(self.required),
+            "additionalProperties": not self.reject_unknown,
+            "description": (
+                "Fields the model reads; required ones may be null where they say so. "
+                + ("Other fields are refused." if self.reject_unknown else
+                   "Other fields are left out of scoring and named in `ignored_fields`, "
+                   "unless one looks like a misspelling of a field the event lacks.")
+            ),
+        }
 
     def _type_error(self, name: str, value: Any) -> str | None:
         if value is None:
@@ -120,6 +190,32 @@ class EventSchema:
                 message = f"{message} (derived feature: {self._derived[problem.column]})"
             out.append(FieldError(event=problem.row - offset, field=field, message=message))
         return out
+
+
+def unknown_fields(record: Mapping[str, Any], known: set[str],
+                   reject: bool) -> list[tuple[str, str]]:
+    """(field, message) for the fields of ``record`` outside ``known``: all of them with
+    ``reject``, else only those that look like a misspelling of a known field it lacks."""
+    lacking = [name for name in known if name not in record]
+    out = []
+    for name in record:
+        if name in known:
+            continue
+        near = misspelling(str(name), lacking)
+        if near is not None or reject:
+            hint = "" if near is None else f"; did you mean {near!r}?"
+            out.append((str(name)[:MAX_TEXT], "unknown field" + hint))
+    return out
+
+
+def misspelling(name: str, candidates: Sequence[str]) -> str | None:
+    """The field among ``candidates`` that ``name`` looks like a misspelling of, if any: the
+    same but for case, or close by difflib's ratio (0.8, the cut-off its docs use as a rule)."""
+    folded = {candidate.casefold(): candidate for candidate in candidates}
+    if name.casefold() in folded:
+        return folded[name.casefold()]
+    close = difflib.get_close_matches(name.casefold(), list(folded), 1, 0.8)
+    return folded[close[0]] if close else None
 
 
 def event_id(event: Mapping[str, Any], id_field: str, position: int) -> str:

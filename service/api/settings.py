@@ -33,7 +33,9 @@ class Settings(Strict):
     max_body_bytes: int = Field(default=1 << 20, ge=1024)
     max_events: int = Field(default=1000, ge=1)
     batch_rows: int = Field(default=64, ge=1)
-    unknown_fields: str = Field(default="reject", pattern="^(reject|ignore)$")
+    # warn: score, and name fields the model does not use in `ignored_fields`; reject: 422.
+    # "ignore" is the earlier name of warn.
+    unknown_fields: str = Field(default="warn", pattern="^(warn|ignore|reject)$")
     prediction_log: str = "predictions"
     prediction_log_queue: int = Field(default=100_000, ge=1)
     prediction_log_fsync_seconds: float = Field(default=1.0, gt=0)

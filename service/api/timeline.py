@@ -14,7 +14,7 @@ import pandas as pd
 
 from causeline.service.api.bodies import TimelineScoreRequest
 from causeline.service.api.problems import FieldError, Problem
-from causeline.service.api.schema import json_type, number_error
+from causeline.service.api.schema import json_type, number_error, unknown_fields
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import CauselineError, first_line, quoted
 from causeline.service.features.logs import LogValueError, TimelineInputs
@@ -96,8 +96,8 @@ def check_request(
     second = False
     for row, reading in enumerate(payload.readings):
         found: list[tuple[str, str | None]] = []
-        if reject_unknown:
-            found += [(str(name), "unknown field") for name in reading if name not in known]
+        if not known.issuperset(reading):
+            found += unknown_fields(reading, known, reject_unknown)
         entity = reading.get(r.entity)
         if entity is not None and (isinstance(entity, bool) or not isinstance(entity, str | int)):
             found.append((r.entity, "expected a string"))

@@ -344,9 +344,10 @@ def test_long_texts_are_refused_or_cut_in_messages(
     errors = refused(client.post("/v1/score", json={"events": [
         {**events[0], "case_type": "y" * 1_000_000}]}), openapi)
     assert errors[0]["field"] == "case_type" and len(errors[0]["message"]) < 100
-    errors = refused(client.post("/v1/score", json={"events": [
-        {**events[0], "z" * 10_000: 1}]}), openapi)
-    assert errors[0]["message"] == "unknown field" and len(errors[0]["field"]) <= 256
+    # A field the model does not use is scored past and named, cut like any echoed name.
+    body = openapi(client.post("/v1/score", json={"events": [
+        {**events[0], "z" * 10_000: 1}]}), "/v1/score")
+    assert body["ignored_fields"] == ["z" * 256]
     errors = refused(client.post("/v1/score", json={"model": "m" * 10_000, "events": events}),
                      openapi)
     assert len(errors[0]["message"]) < 200
@@ -373,30 +374,56 @@ def test_missing_values_are_scored_and_named_in_warnings(
     assert all(name in told[0] for name in fields)
 
 
-def test_unknown_field(client: TestClient, openapi: OpenAPICheck, events: list[dict]) -> None:
-    event = {**events[0], "store_id": "ST-01"}
-    errors = refused(client.post("/v1/score", json={"events": [event]}), openapi)
-    assert errors == [{"event": 0, "field": "store_id", "message": "unknown field"}]
+def test_fields_the_model_does_not_use_are_scored_past_and_named(
+    client: TestClient, openapi: OpenAPICheck, events: list[dict]
+) -> None:
+    # Callers send whole records (a product id, a store name): by default the model's own
+    # fields are scored and the others named, with the same answer as without them.
+    plain = openapi(client.post("/v1/score", json={"events": events[:2]}), "/v1/score")
+    assert plain["ignored_fields"] == []
+    whole = [{**events[0], "store_id": "ST-01", "note": "x"}, {**events[1], "store_id": "S"}]
+    body = openapi(client.post("/v1/score", json={"events": whole}), "/v1/score")
+    assert body["ignored_fields"] == ["store_id", "note"]
+    assert body["results"] == plain["results"]
+    # A misspelt top-level key is still refused: the request's own shape is fixed.
     errors = refused(client.post("/v1/score", json={"events": [events[0]], "x": 1}), openapi)
     assert errors == [{"field": "x", "message": "unknown field"}]
 
 
-def test_unknown_fields_can_be_ignored_by_setting(
+def test_a_misspelt_field_is_refused_not_ignored(
+    client: TestClient, openapi: OpenAPICheck, events: list[dict]
+) -> None:
+    event = {k: v for k, v in events[0].items() if k != "setpoint_c"} | {"setpont_c": 2.0}
+    errors = refused(client.post("/v1/score", json={"events": [event]}), openapi)
+    assert {"event": 0, "field": "setpont_c",
+            "message": "unknown field; did you mean 'setpoint_c'?"} in errors
+    assert {"event": 0, "field": "setpoint_c",
+            "message": "field is required (send null for an unknown value)"} in errors
+    # Optional fields too (the id here): case alone is enough to be a misspelling.
+    event = {k: v for k, v in events[0].items() if k != "snapshot_id"} | {"Snapshot_ID": "a"}
+    errors = refused(client.post("/v1/score", json={"events": [event]}), openapi)
+    assert errors == [{"event": 0, "field": "Snapshot_ID",
+                       "message": "unknown field; did you mean 'snapshot_id'?"}]
+
+
+def test_unknown_fields_can_be_refused_by_setting(
     make_client: Callable[..., TestClient], events: list[dict]
 ) -> None:
-    client = make_client(unknown_fields="ignore")
+    client = make_client(unknown_fields="reject")
     response = client.post("/v1/score", json={"events": [{**events[0], "store_id": "ST-01"}]})
-    assert response.status_code == 200
+    assert response.status_code == 422
+    assert response.json()["errors"] == [{"event": 0, "field": "store_id",
+                                          "message": "unknown field"}]
 
 
 def test_every_bad_field_is_named(
     client: TestClient, openapi: OpenAPICheck, events: list[dict]
 ) -> None:
     first = {**events[0], "month": "May", "case_type": "igloo"}
-    second = {k: v for k, v in events[1].items() if k != "month"} | {"colour": "red"}
+    second = {k: v for k, v in events[1].items() if k != "month"} | {"mnth": 5}
     errors = refused(client.post("/v1/score", json={"events": [first, second]}), openapi)
     assert {(e["event"], e["field"]) for e in errors} == {(0, "month"), (1, "month"),
-                                                          (1, "colour")}
+                                                          (1, "mnth")}
     # The category is checked after the JSON-level fields pass: fix those and it shows up.
     first["month"] = 5
     errors = refused(client.post("/v1/score", json={"events": [first]}), openapi)
@@ -846,3 +873,48 @@ def test_folder_of_bundles_served_side_by_side(
     assert unnamed.json()["errors"][0]["message"] == "name a model: display-cases, display-cases-b"
     named = client.post("/v1/score", json={"model": "display-cases-b", "events": events[:1]})
     assert named.json()["model"] == {"name": "display-cases-b", "version": "b1"}
+
+
+def test_the_document_describes_each_served_models_event(
+    client: TestClient, events: list[dict]
+) -> None:
+    # Checked with jsonschema (the reference JSON Schema validator) against the published
+    # document: a generated client knows every field, and what the document calls valid is
+    # what the service scores.
+    spec = client.get("/openapi.json").json()
+    operation = spec["paths"]["/v1/score"]["post"]
+    request = {**operation["requestBody"]["content"]["application/json"]["schema"],
+               "components": spec["components"]}
+    valid = jsonschema.Draft202012Validator(request)
+    assert not valid.is_valid({"events": [{}]})
+    assert valid.is_valid({"events": events[:2]})
+    assert not valid.is_valid({"events": [{**events[0], "case_type": "igloo"}]})
+    assert not valid.is_valid({"events": [{**events[0], "month": "May"}]})
+    assert valid.is_valid({"events": [{**events[0], "store_id": "ST-01"}]})  # passed over
+    assert client.post("/v1/score", json={"events": [{}]}).status_code == 422
+    # The same fields, types and categories as GET /v1/models/{name} gives.
+    described = client.get("/v1/models/display-cases").json()
+    event = spec["components"]["schemas"]["Event-display-cases"]
+    assert event["required"] == described["fields"]["required"]
+    assert set(event["properties"]) == set(described["fields"]["required"]) | set(
+        described["fields"]["optional"])
+    for feature in described["features"]:
+        if feature["field"] and feature["categories"]:
+            assert event["properties"][feature["field"]]["enum"][:-1] == feature["categories"]
+
+
+def test_the_document_follows_a_reload(
+    make_client: Callable[..., TestClient], tmp_path: Path, demo_bundle_path: Path
+) -> None:
+    # Strict mode says so in the document too; a reload that serves other fields shows them.
+    client = make_client(unknown_fields="reject")
+    event = client.get("/openapi.json").json()["components"]["schemas"]["Event-display-cases"]
+    assert event["additionalProperties"] is False
+    folder = client.app.state.service.settings.bundle
+    assert folder == demo_bundle_path
+    before = client.get("/openapi.json").json()
+    client.app.state.service.current = None  # as before the first load
+    assert "Event-display-cases" not in client.get("/openapi.json").json()["components"][
+        "schemas"]
+    client.app.state.service.reload()
+    assert client.get("/openapi.json").json() == before

@@ -85,7 +85,7 @@ def test_a_scored_request_is_answered_alike_and_skips_the_router(
 
 
 @pytest.mark.parametrize("case", [
-    "broken json", "empty body", "not an object", "unknown field", "unknown category",
+    "broken json", "empty body", "not an object", "misspelt field", "unknown category",
     "too many events", "unknown model", "bad flag", "no key", "wrong key", "text body",
     "encoded body",
 ])
@@ -100,8 +100,9 @@ def test_a_refused_request_is_refused_alike(
         body = b" "
     elif case == "not an object":
         body = b"[1, 2]"
-    elif case == "unknown field":
-        body = json.dumps({"events": [{**event, "colour": "red"}]}).encode()
+    elif case == "misspelt field":
+        typo = {k: v for k, v in event.items() if k != "case_type"} | {"case_typ": "x"}
+        body = json.dumps({"events": [typo]}).encode()
     elif case == "unknown category":
         body = json.dumps({"events": [{**event, "case_type": "igloo"}]}).encode()
     elif case == "too many events":

@@ -17,6 +17,7 @@ from fastapi.testclient import TestClient
 
 from causeline.service.api.app import create_app
 from causeline.service.api.bodies import TimelineScoreRequest
+from causeline.service.api.problems import FieldError
 from causeline.service.api.settings import Settings
 from causeline.service.api.timeline import check_request
 from causeline.service.bundle.load import load_bundle
@@ -267,19 +268,24 @@ def test_boolean_in_a_reading(client: TestClient, body: dict) -> None:
 
 
 def test_unknown_field_in_a_reading(client: TestClient, body: dict, built) -> None:  # type: ignore[no-untyped-def]
-    # Refused as /v1/score refuses unknown event fields, unless unknown fields are ignored.
+    # As /v1/score treats event fields: passed over by default, refused when the server is
+    # told to refuse them, and refused either way when it looks like a misspelling.
     body["readings"][3]["colour"] = "red"
-    errors = _refused(client, body)
-    assert errors == [{"field": "readings.3.colour", "message": "unknown field"}]
+    assert client.post("/v1/score/timeline", json=body).status_code == 200
     _, _, bundle_path = built
     spec = load_bundle(bundle_path).spec.timeline
     payload = TimelineScoreRequest.model_validate(body)
-    assert check_request(spec, payload, reject_unknown=False) == []
-    # The server's own setting reaches the endpoint.
-    lenient = create_app(Settings(bundle=str(bundle_path), prediction_log="off",
-                                  unknown_fields="ignore"))
-    with TestClient(lenient) as other:
-        assert other.post("/v1/score/timeline", json=body).status_code == 200
+    assert check_request(spec, payload, reject_unknown=True) == [
+        FieldError(field="readings.3.colour", message="unknown field")]
+    strict = create_app(Settings(bundle=str(bundle_path), prediction_log="off",
+                                 unknown_fields="reject"))
+    with TestClient(strict) as other:
+        assert other.post("/v1/score/timeline", json=body).status_code == 422
+    measurement = spec.readings.measurements[0]
+    body["readings"][3][measurement.upper()] = body["readings"][3].pop(measurement)
+    errors = _refused(client, body)
+    assert errors == [{"field": f"readings.3.{measurement.upper()}",
+                       "message": f"unknown field; did you mean {measurement!r}?"}]
 
 
 def test_attributes_of_another_entity(client: TestClient, body: dict) -> None:

@@ -81,5 +81,5 @@ async def _score(
             "invalid-events", errors,
         )
     body = {"model": {"name": model.name, "version": model.version},
-            "results": scored.records}
+            "results": scored.records, "ignored_fields": schema.ignored(events)}
     return FastJSONResponse(body)
