@@ -266,9 +266,11 @@ def _changes(args: argparse.Namespace, bundle):  # type: ignore[no-untyped-def]
         raise CauselineError("--what-to-change: the bundle's config gives no controllable "
                              "feature a `change:` setting, so nothing may be changed (docs/"
                              "config.md, What to change)")
-    from causeline.service.actions.search import what_to_change
+    from causeline.service.actions.search import ActionFinder, Actions
+    from causeline.service.explain.explainer import Explainer
 
-    return lambda explanation: what_to_change(bundle, explanation, args.what_to_change)
+    explainer, finder = Explainer(bundle), ActionFinder(bundle, args.what_to_change)
+    return lambda explanation: Actions.find(explainer, explanation, args.what_to_change, finder)
 
 
 def _rootcause(args: argparse.Namespace) -> int:

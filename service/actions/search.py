@@ -19,13 +19,15 @@ a controllable feature moves only as its ``change`` settings allow (range, direc
 from __future__ import annotations
 
 import itertools
-from dataclasses import dataclass
+from collections import Counter
+from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
 from causeline.service.bundle.load import Bundle
-from causeline.service.explain.explainer import Explanation
+from causeline.service.explain.explainer import Explainer, Explanation
 from causeline.service.explain.score import calibrate
 from causeline.service.explain.treeparse import NUMERICAL, Forest, parse_forest
 from causeline.service.spec.dataset import ChangeSpec, FeatureSpec
@@ -52,6 +54,15 @@ class Action:
     probability_before: float
     probability_after: float
     reached: bool
+    edits: tuple[tuple[int, float], ...] = ()  # (feature position, model value) per change
+    reasons_after: list[str] = field(default_factory=list)  # ranked codes after the change
+
+    def apply(self, row: np.ndarray) -> np.ndarray:
+        """The model-ready row with this action's changes made."""
+        out = row.copy()
+        for position, value in self.edits:
+            out[position] = value
+        return out
 
 
 # A combination found: its total cost, the probability after, and (feature, option) pairs.
@@ -85,7 +96,7 @@ class ActionFinder:
     def find(self, row: np.ndarray, target: float | None = None) -> Action:
         """The action for one event's model-ready feature row (see the module docstring)."""
         target = self.bundle.manifest.decision.threshold if target is None else target
-        before = float(self._probability(row[None, :])[0])
+        before = float(self.probability(row[None, :])[0])
         if before < target or not self.movable:
             return Action([], 0.0, before, before, before < target)
         options = {i: self._options(i, spec, row[i]) for i, spec in self.movable}
@@ -105,9 +116,10 @@ class ActionFinder:
             # Nothing allowed lowers the risk at all: no change to propose.
             return Action([], 0.0, before, before, False)
         cost, after, picks = chosen
-        changes = [Change(self.names[i], self._shown(i, row[i]), option.shown)
+        changes = [Change(self.names[i], self.shown(i, row[i]), option.shown)
                    for i, option in picks]
-        return Action(changes, cost, before, after, best is not None)
+        edits = tuple((i, option.value) for i, option in picks)
+        return Action(changes, cost, before, after, best is not None, edits)
 
     def _score(self, row: np.ndarray, features: tuple[int, ...],
                choices: list[list[_Option]], target: float) -> tuple[_Found | None, _Found]:
@@ -123,7 +135,7 @@ class ActionFinder:
             grid = np.repeat(row[None, :], len(batch), axis=0)
             for column, i in enumerate(features):
                 grid[:, i] = values[column][batch[:, column]]
-            p[start:start + len(batch)] = self._probability(grid)
+            p[start:start + len(batch)] = self.probability(grid)
         cost = sum(costs[column][picks[:, column]] for column in range(len(features)))
 
         def found(k: int) -> _Found:
@@ -136,11 +148,12 @@ class ActionFinder:
             else None
         return reached, found(int(np.argmin(p)))
 
-    def _probability(self, rows: np.ndarray) -> np.ndarray:
+    def probability(self, rows: np.ndarray) -> np.ndarray:
+        """Calibrated probabilities of model-ready rows."""
         raw = self.bundle.booster.predict(rows, raw_score=True)
         return calibrate(self.bundle.manifest.calibration, raw)
 
-    def _shown(self, i: int, value: float) -> float | str | None:
+    def shown(self, i: int, value: float) -> float | str | None:
         if np.isnan(value):
             return None
         names = self.categories.get(self.names[i])
@@ -206,27 +219,119 @@ def _nearest(start: float, stop: float, now: float, step: float | None) -> float
     return float(value) if start <= value <= stop else None
 
 
-def what_to_change(bundle: Bundle, explanation: Explanation, max_changes: int) -> pd.DataFrame:
-    """Per event at or above the threshold, the cheapest allowed change that brings it below;
-    empty for the others. The columns :func:`action_frame` gives."""
-    finder = ActionFinder(bundle, max_changes)
-    values = explanation.features.values
-    actions = [finder.find(values[row]) if flagged else Action([], 0.0, p, p, True)
-               for row, (flagged, p) in enumerate(zip(explanation.decision,
-                                                      explanation.probability, strict=True))]
-    return action_frame(actions)
+def with_reasons(explainer: Explainer, rows: np.ndarray, actions: list[Action]) -> list[Action]:
+    """The actions with the reason codes each event would carry after its change (one
+    explanation call for all of them)."""
+    changed = [k for k, action in enumerate(actions) if action.changes]
+    if not changed:
+        return actions
+    after = np.vstack([actions[k].apply(rows[k]) for k in changed])
+    out = list(actions)
+    for k, reasons in zip(changed, explainer.reasons_of(after), strict=True):
+        out[k] = replace(actions[k], reasons_after=[r.code for r in reasons])
+    return out
 
 
-def action_frame(actions: list[Action]) -> pd.DataFrame:
-    """Columns for an explain output: the changes, their cost and the probability after."""
-    return pd.DataFrame({
-        "change": ["; ".join(f"{c.feature} {_text(c.before)} -> {_text(c.after)}"
-                             for c in a.changes) for a in actions],
-        "change_cost": [a.cost if a.changes else None for a in actions],
-        "probability_after_change": [a.probability_after if a.changes else None
-                                     for a in actions],
-        "change_reaches_threshold": [a.reached for a in actions],
-    })
+class Actions:
+    """Per event the action :class:`ActionFinder` found (events below the threshold need none),
+    as explain's outputs hold them: columns for a table, one record per event for JSON."""
+
+    def __init__(self, actions: list[Action], needed: np.ndarray) -> None:
+        self.actions = actions
+        self.needed = needed
+
+    @classmethod
+    def find(cls, explainer: Explainer, explanation: Explanation, max_changes: int,
+             finder: ActionFinder | None = None) -> Actions:
+        """Actions for every event of ``explanation`` at or above the threshold."""
+        finder = finder or ActionFinder(explainer.bundle, max_changes)
+        values = explanation.features.values
+        needed = np.asarray(explanation.decision, dtype=bool)
+        actions = [finder.find(values[row]) if flag else Action([], 0.0, p, p, True)
+                   for row, (flag, p) in enumerate(zip(needed, explanation.probability,
+                                                       strict=True))]
+        return cls(with_reasons(explainer, values, actions), needed)
+
+    def frame(self) -> pd.DataFrame:
+        """Columns for an explain table: the changes, cost, probability and codes after."""
+        a = self.actions
+        return pd.DataFrame({
+            "change": ["; ".join(f"{c.feature} {_text(c.before)} -> {_text(c.after)}"
+                                 for c in x.changes) for x in a],
+            "change_cost": [x.cost if x.changes else None for x in a],
+            "probability_after_change": [x.probability_after if x.changes else None for x in a],
+            "change_reaches_threshold": [x.reached for x in a],
+            "reason_codes_after_change": ["; ".join(x.reasons_after) for x in a],
+        })
+
+    def records(self) -> list[dict[str, Any] | None]:
+        """Per event a JSON-ready record (None where the event is below the threshold)."""
+        return [action_record(x) if flag else None
+                for x, flag in zip(self.actions, self.needed, strict=True)]
+
+
+def action_record(action: Action) -> dict[str, Any]:
+    """One action as JSON: changes (empty when nothing allowed lowers the risk), cost, the
+    probability before and after, whether it reaches the target, and the codes after."""
+    return {
+        "changes": [{"feature": c.feature, "from": c.before, "to": c.after}
+                    for c in action.changes],
+        "cost": action.cost,
+        "probability_before": action.probability_before,
+        "probability_after": action.probability_after,
+        "reaches_threshold": action.reached,
+        "reason_codes_after": action.reasons_after,
+    }
+
+
+@dataclass(frozen=True)
+class CommonAction:
+    """The action most often chosen for a group's events: its changes (the median target of
+    each), how often it was chosen, and the share of events it brings below the threshold when
+    applied to every examined event of the group (each change only in its allowed direction)."""
+
+    description: str
+    chosen_share: float
+    below_share: float
+    examined: int
+
+
+def common_action(finder: ActionFinder, rows: np.ndarray) -> CommonAction | None:
+    """The most common action over ``rows`` (a sample of one group's events, model-ready);
+    None when no examined event is at or above the threshold or none can be moved."""
+    threshold = finder.bundle.manifest.decision.threshold
+    before = finder.probability(rows) if len(rows) else np.zeros(0)
+    flagged = rows[before >= threshold]
+    if not len(flagged) or not finder.movable:
+        return None
+    actions = [finder.find(row) for row in flagged]
+    kinds = Counter(tuple(i for i, _ in a.edits) for a in actions if a.edits)
+    if not kinds:
+        return None
+    kind, count = kinds.most_common(1)[0]
+    targets: dict[int, float] = {}
+    for position in kind:
+        chosen = [v for a in actions if tuple(i for i, _ in a.edits) == kind
+                  for i, v in a.edits if i == position]
+        spec = finder.bundle.spec.features[position]
+        # Categories: the most chosen value; numbers: the median target.
+        targets[position] = (Counter(chosen).most_common(1)[0][0] if spec.kind == "categorical"
+                             else float(np.median(chosen)))
+    moved = flagged.copy()
+    for position, target in targets.items():
+        change = finder.bundle.spec.features[position].change
+        column = moved[:, position]
+        if change is not None and change.direction == "decrease":
+            moved[:, position] = np.where(np.isnan(column), target, np.minimum(column, target))
+        elif change is not None and change.direction == "increase":
+            moved[:, position] = np.where(np.isnan(column), target, np.maximum(column, target))
+        else:
+            moved[:, position] = target
+    after = finder.probability(moved)
+    description = "; ".join(f"{finder.names[i]} -> {_text(finder.shown(i, t))}"
+                            for i, t in targets.items())
+    return CommonAction(description, count / len(actions), float(np.mean(after < threshold)),
+                        len(actions))
 
 
 def _text(value: float | str | None) -> str:

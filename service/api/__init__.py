@@ -3,5 +3,5 @@ API keys, problem details, metrics, the prediction-log writer, the registry of s
 their swap without a restart, settings. The only subpackage that imports ``fastapi``,
 ``starlette`` or ``uvicorn``.
 
-May import: errors, files, spec, features, bundle, explain.
+May import: errors, files, spec, features, bundle, explain, actions.
 """

@@ -64,6 +64,25 @@ class ReasonOut(BaseModel):
     values: dict[str, Value] = Field(description="the event's values of the code's features")
 
 
+class ChangeOut(BaseModel):
+    feature: str
+    from_: float | str | None = Field(alias="from", description="the value now (null: missing)")
+    to: float | str
+
+
+class ActionOut(BaseModel):
+    """A model estimate for qualified staff to review, never an instruction: stay within the
+    equipment maker's limits and local codes; exclude unsafe settings in the config."""
+
+    changes: list[ChangeOut] = Field(
+        description="empty when no allowed change lowers the probability")
+    cost: float
+    probability_before: float
+    probability_after: float
+    reaches_threshold: bool
+    reason_codes_after: list[str]
+
+
 class EventResult(BaseModel):
     id: str
     probability: float = Field(description="calibrated probability of the event")
@@ -76,6 +95,12 @@ class EventResult(BaseModel):
     )
     contributions: dict[str, float] | None = Field(
         default=None, description="with ?contributions=all: every feature's SHAP value"
+    )
+    what_to_change: ActionOut | None = Field(
+        default=None, description="with ?what-to-change[=N]: the cheapest allowed change of at "
+        "most N controllable features (default 2) that brings the event below the threshold; "
+        "null for an event already below it. A model estimate for qualified staff to review, "
+        "never an instruction; respect the equipment maker's limits and local codes",
     )
 
 

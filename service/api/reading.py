@@ -25,6 +25,9 @@ Model = TypeVar("Model", bound=BaseModel)
 
 BOM = b"\xef\xbb\xbf"
 CONTRIBUTIONS_HELP = "'all' adds every feature's contribution and base value"
+CHANGES_HELP = ("adds to each event at or above the threshold the cheapest allowed change of at "
+                "most N controllable features (empty: 2) that brings it below; needs the "
+                "config's `change:` settings")
 
 
 async def read_body(request: Request, model: type[Model]) -> Model:
@@ -96,6 +99,11 @@ def openapi_request(model: type[BaseModel], security: list[str]) -> dict[str, An
             "description": CONTRIBUTIONS_HELP,
             "schema": {"anyOf": [{"const": "all", "type": "string"}, {"type": "null"}],
                        "description": CONTRIBUTIONS_HELP},
+        }, {
+            "name": "what-to-change", "in": "query", "required": False,
+            "description": CHANGES_HELP, "allowEmptyValue": True,
+            "schema": {"type": "string", "enum": ["", "1", "2", "3", "4"],
+                       "description": CHANGES_HELP},
         }],
         "security": [{name: []} for name in security],
     }

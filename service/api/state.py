@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 from causeline.service.api import heap
@@ -33,6 +33,8 @@ class Current:
 
     served: Served
     schemas: dict[str, EventSchema]
+    # Action finders made on first use, per (model, changes): see api/changes.py.
+    finders: dict[tuple[str, int], Any] = field(default_factory=dict)
 
     def pick(self, name: str | None) -> tuple[Model, EventSchema]:
         if name is None:

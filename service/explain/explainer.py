@@ -65,11 +65,7 @@ class Explainer:
         contrib = self.engine.contributions(matrix.values)
         probability = calibrate(self.bundle.manifest.calibration, contrib.raw)
         codes = self.catalogue.aggregate(contrib.values, matrix.values)
-        ranked = self.catalogue.rank(codes, self.top_k, self.min_contribution)
-        reasons = [
-            [self.catalogue.reason(code, value, matrix.values[row]) for code, value in events]
-            for row, events in enumerate(ranked)
-        ]
+        reasons = self._reasons(codes, matrix.values)
         return Explanation(
             ids=_ids(table, self.bundle.spec.id),
             features=matrix,
@@ -80,6 +76,17 @@ class Explainer:
             reasons=reasons,
             warnings=self._warnings(matrix),
         )
+
+    def reasons_of(self, values: np.ndarray) -> list[list[Reason]]:
+        """Ranked reasons for rows of model-ready feature values (e.g. an event after a
+        change), as :meth:`explain` ranks them."""
+        contrib = self.engine.contributions(values)
+        return self._reasons(self.catalogue.aggregate(contrib.values, values), values)
+
+    def _reasons(self, codes: np.ndarray, values: np.ndarray) -> list[list[Reason]]:
+        ranked = self.catalogue.rank(codes, self.top_k, self.min_contribution)
+        return [[self.catalogue.reason(code, value, values[row]) for code, value in events]
+                for row, events in enumerate(ranked)]
 
     def _warnings(self, matrix: FeatureMatrix) -> list[list[str]]:
         """Per row: cell problems, missing values, and values outside the training range."""

@@ -14,7 +14,7 @@ from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 import pandas as pd
@@ -60,26 +60,33 @@ class ExplainTotals:
         )
 
 
+class ChangeOutput(Protocol):
+    """What to change per event, as a table's columns and as JSON records (None: not needed).
+    Made by the actions subpackage, which builds on this one."""
+
+    def frame(self) -> pd.DataFrame: ...
+
+    def records(self) -> list[dict[str, Any] | None]: ...
+
+
 def rendered(
     explanation: Explanation, explainer: Explainer, kind: str, all_contributions: bool,
-    changes: pd.DataFrame | None = None,
+    changes: ChangeOutput | None = None,
 ) -> Any:
     """The explanation as its output kind holds it: JSON lines as text, else a table;
-    ``changes`` (one row per event) adds what to change."""
+    ``changes`` (one per event) adds what to change."""
     bundle = explainer.bundle
     threshold = bundle.manifest.decision.threshold
     names = bundle.spec.feature_names
     if kind == "jsonl":
         records = explanation_records(explanation, threshold, names, all_contributions)
         if changes is not None:
-            # Python values, missing as None: JSON has no NaN.
-            plain = changes.astype(object).where(changes.notna(), None)
-            for record, change in zip(records, plain.to_dict("records"), strict=True):
+            for record, change in zip(records, changes.records(), strict=True):
                 record["what_to_change"] = change
         return "".join(json.dumps(r, ensure_ascii=False) + "\n" for r in records)
     frame = explanation_frame(explanation, threshold, names, explainer.top_k, all_contributions)
     if changes is not None:
-        frame = pd.concat([frame.reset_index(drop=True), changes], axis=1)
+        frame = pd.concat([frame.reset_index(drop=True), changes.frame()], axis=1)
     return escape_frame(frame) if kind == "csv" else frame
 
 
@@ -92,7 +99,7 @@ def explain_file(
     all_contributions: bool = False,
     latest: bool = False,
     as_of: str | None = None,
-    changes: Callable[[Explanation], pd.DataFrame] | None = None,
+    changes: Callable[[Explanation], ChangeOutput] | None = None,
 ) -> ExplainTotals:
     """Explain a table file, or the snapshots built from raw logs, into ``out``.
 

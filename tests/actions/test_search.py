@@ -80,7 +80,7 @@ def _brute(finder: ActionFinder, row: np.ndarray, threshold: float, config: dict
                     allowed = False
                 moved[i] = value
                 cost += change["cost"] + change["cost_per_unit"] * abs(value - row[i])
-            if allowed and finder._probability(moved[None, :])[0] < threshold:
+            if allowed and finder.probability(moved[None, :])[0] < threshold:
                 best = cost if best is None else min(best, cost)
     return best
 
@@ -148,8 +148,8 @@ def test_what_to_change_needs_change_settings(tmp_path, capsys) -> None:  # type
 
 
 def test_json_lines_say_null_where_no_change_is_proposed(tmp_path) -> None:  # type: ignore[no-untyped-def]
-    # JSON (RFC 8259) has no NaN: an event below the threshold has no cost and no probability
-    # after a change, and the record must say null for them.
+    # JSON (RFC 8259) has no NaN: an event below the threshold needs no change, and its
+    # record says null; an event at or above it has its changes, with reason codes after.
     import json
 
     from causeline.cli import main
@@ -160,6 +160,12 @@ def test_json_lines_say_null_where_no_change_is_proposed(tmp_path) -> None:  # t
                  "--out", str(out), "--what-to-change"]) == 0
     text = out.read_text("utf-8")
     assert "NaN" not in text
-    records = [json.loads(line)["what_to_change"] for line in text.splitlines()]
-    assert any(r["change_cost"] is None for r in records)
-    assert any(r["change"] for r in records)
+    lines = [json.loads(line) for line in text.splitlines()]
+    records = [line["what_to_change"] for line in lines]
+    assert all((r is None) == (not line["decision"])
+               for r, line in zip(records, lines, strict=True))
+    assert None in records
+    moved = [r for r in records if r and r["changes"]]
+    assert moved and all(set(c) == {"feature", "from", "to"} for r in moved
+                         for c in r["changes"])
+    assert all(isinstance(r["reason_codes_after"], list) for r in moved)

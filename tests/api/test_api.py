@@ -531,7 +531,7 @@ def test_openapi_declares_what_the_scoring_endpoints_read(client: TestClient) ->
         operation = spec["paths"][path]["post"]
         body = operation["requestBody"]["content"]["application/json"]["schema"]
         assert model in body["required"] and body["additionalProperties"] is False
-        assert [p["name"] for p in operation["parameters"]] == ["contributions"]
+        assert [p["name"] for p in operation["parameters"]] == ["contributions", "what-to-change"]
         assert {name for entry in operation["security"] for name in entry} == schemes
     models = spec["paths"]["/v1/models"]["get"]
     assert {name for entry in models["security"] for name in entry} == schemes
@@ -918,3 +918,41 @@ def test_the_document_follows_a_reload(
         "schemas"]
     client.app.state.service.reload()
     assert client.get("/openapi.json").json() == before
+
+
+def test_what_to_change_adds_the_searchs_action_to_each_flagged_event(
+    client: TestClient, openapi: OpenAPICheck, events: list[dict], demo_bundle_path: Path
+) -> None:
+    # The same action as the search run directly on the event's feature row (the exact
+    # interval search is checked against brute force in tests/actions), with the reason codes
+    # the model gives the changed event.
+    from causeline.service.actions.search import ActionFinder
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.explain.explainer import Explainer
+
+    body = openapi(client.post("/v1/score?what-to-change=2", json={"events": events}),
+                   "/v1/score")
+    plain = openapi(client.post("/v1/score", json={"events": events}), "/v1/score")
+    assert all("what_to_change" not in r or r["what_to_change"] is None for r in plain["results"])
+    bundle = load_bundle(demo_bundle_path)
+    finder = ActionFinder(bundle, 2)
+    explainer = Explainer(bundle)
+    rows = explainer.explain(pd.DataFrame(events)).features.values
+    flagged = 0
+    for row, result in zip(rows, body["results"], strict=True):
+        record = result["what_to_change"]
+        if not result["decision"]:
+            assert record is None
+            continue
+        flagged += 1
+        action = finder.find(row)
+        assert [(c["feature"], c["to"]) for c in record["changes"]] == [
+            (c.feature, c.after) for c in action.changes]
+        assert record["probability_after"] == pytest.approx(action.probability_after)
+        if record["changes"]:
+            after = explainer.reasons_of(action.apply(row)[None, :])[0]
+            assert record["reason_codes_after"] == [r.code for r in after]
+    assert flagged
+    errors = refused(client.post("/v1/score?what-to-change=7", json={"events": events}), openapi)
+    assert errors == [{"field": "what-to-change",
+                       "message": "the most features to change, 1 to 4 (empty: 2)"}]

@@ -13,7 +13,7 @@ from fastapi import APIRouter, Request
 from fastapi.responses import Response
 from starlette.concurrency import run_in_threadpool
 
-from causeline.service.api import problems
+from causeline.service.api import changes, problems
 from causeline.service.api.auth import api_key_header, bearer
 from causeline.service.api.bodies import ScoreRequest, ScoreResponse, TimelineScoreRequest
 from causeline.service.api.dependencies import check_key, service_of
@@ -36,7 +36,8 @@ async def score(request: Request) -> Response:
     """Probability, decision and ranked reason codes for each event."""
     check_key(request)
     payload = await read_body(request, ScoreRequest)
-    return await _score(request, payload.model, payload.events, all_contributions(request))
+    return await _score(request, payload.model, payload.events, all_contributions(request),
+                        _wanted(request))
 
 
 @router.post("/v1/score/timeline", response_model=ScoreResponse,
@@ -53,11 +54,19 @@ async def score_timeline(request: Request) -> Response:
     assert current is not None
     model, schema = current.pick(payload.model)
     event = await run_in_threadpool(online_event, model.bundle, payload, schema.reject_unknown)
-    return await _score(request, payload.model, [event], flag)
+    return await _score(request, payload.model, [event], flag, _wanted(request))
+
+
+def _wanted(request: Request) -> int | None:
+    """The what-to-change flag, read only when the request has a query (most have none)."""
+    if not request.scope.get("query_string"):
+        return None
+    return changes.flag_value(request.query_params.get(changes.FLAG))
 
 
 async def _score(
-    request: Request, name: str | None, events: list[dict[str, Any]], all_contributions: bool
+    request: Request, name: str | None, events: list[dict[str, Any]], all_contributions: bool,
+    what_to_change: int | None = None,
 ) -> Response:
     """The scoring both endpoints share: checks and batched explanation (which counts and logs)."""
     service = service_of(request)
@@ -80,6 +89,12 @@ async def _score(
             422, f"{len(errors)} invalid field(s) in {len(events)} event(s)",
             "invalid-events", errors,
         )
+    results = scored.records
+    if what_to_change is not None:
+        found = await run_in_threadpool(changes.records, model, schema, events, what_to_change,
+                                        current.finders)
+        results = [{**result, "what_to_change": record}
+                   for result, record in zip(results, found, strict=True)]
     body = {"model": {"name": model.name, "version": model.version},
-            "results": scored.records, "ignored_fields": schema.ignored(events)}
+            "results": results, "ignored_fields": schema.ignored(events)}
     return FastJSONResponse(body)
