@@ -267,5 +267,10 @@ def test_the_wheel_installs_one_package(tmp_path: Path) -> None:
                 f"{'/'.join(path.relative_to(REPO).parts[1:])}"
                 for path in modules(REPO).values()}
     assert expected - set(names) == set()
+    # The report kit's templates and style sheet are package data: a page needs them installed.
+    kit = REPO / "service" / "report"
+    data = {f"causeline/service/report/{p.relative_to(kit).as_posix()}"
+            for p in [kit / "style.css", *(kit / "templates").glob("*.html")]}
+    assert len(data) > 2 and data - set(names) == set()
     (top_level,) = [n for n in names if n.endswith(".dist-info/top_level.txt")]
     assert zipfile.ZipFile(wheel).read(top_level).decode().split() == ["causeline"]
