@@ -128,7 +128,8 @@ def _did(sums: np.ndarray) -> dict[str, np.ndarray]:
     t_before, t_after = _rate(treated, 0), _rate(treated, 1)
     c_before, c_after = _rate(comparison, 0), _rate(comparison, 1)
     change = (t_after - t_before) - (c_after - c_before)
-    placebo = (_rate(treated, 3) - _rate(treated, 2)) - (_rate(comparison, 3) - _rate(comparison, 2))
+    placebo = ((_rate(treated, 3) - _rate(treated, 2))
+               - (_rate(comparison, 3) - _rate(comparison, 2)))
     weights = np.where(np.isfinite(change), treated[..., 3], 0.0)
     total = weights.sum(axis=1)
 

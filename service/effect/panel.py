@@ -60,6 +60,8 @@ class EntityWeeks:
     failure_codes: np.ndarray
     failure_times: np.ndarray
     actions: dict[str, Actions]
+    first_seen: np.ndarray  # per entity, its first and last reading (ns)
+    last_seen: np.ndarray
 
     @property
     def weeks(self) -> int:
@@ -108,5 +110,9 @@ def entity_weeks(spec: TimelineSpec, inputs: TimelineInputs) -> EntityWeeks:
             times = log.times[chosen]
             actions[kind] = Actions(log.codes[chosen], times,
                                     week_number(day_number(times)) - first)
+    first_seen = np.full(names.size, np.iinfo(np.int64).max)
+    last_seen = np.full(names.size, np.iinfo(np.int64).min)
+    np.minimum.at(first_seen, codes, readings.times)
+    np.maximum.at(last_seen, codes, readings.times)
     return EntityWeeks(names, first, day_counts, events, failures.codes, failures.times,
-                       actions)
+                       actions, first_seen, last_seen)
