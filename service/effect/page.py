@@ -6,8 +6,6 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-import numpy as np
-
 from causeline.service.report import charts, write_page
 
 if TYPE_CHECKING:
@@ -50,4 +48,4 @@ def write_report(path: Path, result: EffectResult, caution: str) -> None:
                         f"action; {options['level']:.0%} intervals from "
                         f"{options['bootstrap']} bootstrap samples of entities",
                facts=facts, caution=caution, rows=rows, forest=forest, plots=plots,
-               level=options["level"], nan=np.nan)
+               level=options["level"], before=options["before"], after=options["after"])
