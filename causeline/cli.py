@@ -115,6 +115,28 @@ def _parser() -> argparse.ArgumentParser:
     )
     rootcause.set_defaults(run=_rootcause)
 
+    effect = commands.add_parser(
+        "effect", help="did the fix work: the change in the event rate after each kind of "
+        "action, against entities not treated in the same weeks, beside the model's estimate")
+    effect.add_argument("--config", required=True, type=Path, help="data-set config (YAML) "
+                        "with a timeline section that tracks actions")
+    _raw_arguments(effect, "")
+    effect.add_argument("--bundle", type=Path, help="a bundle built from the same timelines, "
+                        "for the model's own estimate beside each measured effect")
+    effect.add_argument("--out", required=True, type=Path, help="output folder")
+    effect.add_argument("--weeks-before", type=int, default=6, help="weeks compared before "
+                        "the action's week (default 6)")
+    effect.add_argument("--weeks-after", type=int, default=6, help="weeks compared after it "
+                        "(default 6)")
+    effect.add_argument("--bootstrap", type=int, default=999, help="bootstrap samples of "
+                        "entities for the interval (default 999)")
+    effect.add_argument("--level", type=float, default=0.95, help="interval level (0.95)")
+    effect.add_argument("--min-treated", type=int, default=10, help="fewest treated (and "
+                        "comparison) entities for a number (default 10)")
+    effect.add_argument("--seed", type=int, default=0, help="bootstrap seed (default 0)")
+    effect.add_argument("--quiet", action="store_true", help="no progress on standard error")
+    effect.set_defaults(run=_effect)
+
     serve = commands.add_parser(
         "serve", help="serve scores with reason codes over HTTP (settings: CAUSELINE_* variables)"
     )
@@ -314,6 +336,36 @@ def _rootcause(args: argparse.Namespace) -> int:
         status = record["status"] if isinstance(record["status"], str) else ""
         print(f"  {record['group_id']:<12} {status:<9} {record['events']:>7}  {record['label']}")
     print("Groups and events avoidable are model estimates, not a diagnosis.")
+    return 0
+
+
+def _effect(args: argparse.Namespace) -> int:
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.effect.job import EffectOptions, run_effect
+    from causeline.training.config import load_config
+
+    options = EffectOptions(
+        before=args.weeks_before, after=args.weeks_after, bootstrap=args.bootstrap,
+        level=args.level, seed=args.seed, min_treated=args.min_treated,
+        min_comparison=args.min_treated)
+    options.check()
+    spec = load_config(args.config)
+    bundle = load_bundle(args.bundle) if args.bundle is not None else None
+    result = run_effect(spec, _raw_paths(args), args.out, options, bundle, _progress(args))
+    print(f"measured {int((result.table['status'] == 'measured').sum())} of {len(result.table)} "
+          f"kinds of action -> {args.out}")
+    for row in result.table.to_dict("records"):
+        name = row["action_kind"] + (f" ({row['fix_kind']})" if row["fix_kind"] else "")
+        if row["warning"]:
+            print(f"  {name}: no number: {row['warning']}")
+            continue
+        line = (f"  {name}: {row['effect_per_1000']:+.1f} per 1,000 entity-days "
+                f"({row['effect_low']:+.1f} to {row['effect_high']:+.1f}), "
+                f"{row['treated_entities']} treated, {row['comparison_entities']} comparison")
+        if row["model_effect_per_1000"] == row["model_effect_per_1000"]:
+            line += f"; model {row['model_effect_per_1000']:+.1f}"
+        print(line)
+    print("Measured under parallel trends on past logs; see docs/effect.md before acting.")
     return 0
 
 

@@ -119,11 +119,18 @@ class FeatureSpec(Strict):
 
 
 class Fix(Strict):
-    """The kind of fix a code suggests, and the settings it brings for controllable drivers."""
+    """The kind of fix a code suggests, and the settings it brings for controllable drivers.
+
+    ``actions``: the kinds of the timeline's maintenance log (``timeline.actions.kinds``) that
+    carry this fix out, for ``causeline effect``; without them a kind belongs to a fix whose
+    targets set its time-since feature, or whose kind reads the same (``firmware update`` and
+    ``firmware_update``).
+    """
 
     kind: str = Field(min_length=1)
     action: str = Field(min_length=1)
     targets: dict[str, float | str] = Field(default_factory=dict)
+    actions: tuple[str, ...] = ()
 
 
 class ReasonCode(Strict):
@@ -201,6 +208,7 @@ class DatasetSpec(Strict):
         if self.timeline is not None:
             self._check_built(raw)
         self._check_codes(set(names))
+        self._check_fix_actions()
         return self
 
     def _check_built(self, raw: set[str]) -> None:
@@ -276,6 +284,15 @@ class DatasetSpec(Strict):
                         raise ValueError(f"{where}.fix.targets: {target!r} needs a number")
                     if spec.kind == "categorical" and not isinstance(value, str):
                         raise ValueError(f"{where}.fix.targets: {target!r} needs a category")
+
+    def _check_fix_actions(self) -> None:
+        kinds = self.timeline.actions.kinds if self.timeline and self.timeline.actions else ()
+        for index, code in enumerate(self.reason_codes):
+            for kind in code.fix.actions if code.fix else ():
+                if kind not in kinds:
+                    raise ValueError(
+                        f"reason_codes[{index}].fix.actions: {kind!r} is not one of "
+                        f"timeline.actions.kinds ({', '.join(kinds) or 'none'})")
 
     @property
     def feature_names(self) -> list[str]:

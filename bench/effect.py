@@ -1,0 +1,119 @@
+"""The fix-effect study (``causeline effect``): its time on a year of the demo fleet's logs
+(target: under a minute), and how often its intervals cover the planted truth on fresh seeds.
+
+Planted truth comes from fixtures/demo/planted.py (the default plan: coil cleaning cuts the
+hazard by 40 %, a firmware update does nothing, a leak repair follows failures). Per size and
+seed it prints nothing; per size, the coverage of each measured kind out of the seeds, how
+often the no-effect kind's interval holds zero, how often the repair got its warning, and the
+worst seed (largest miss, in interval half-widths).
+
+    python bench/effect.py                 # timing and 20 seeds of two fleet sizes
+    python bench/effect.py --seeds 5 --no-timing
+"""
+
+from __future__ import annotations
+
+import argparse
+import tempfile
+import time
+from pathlib import Path
+
+from common import ROOT, report
+
+MEASURED = ("coil_cleaning", "firmware_update")
+
+
+def _spec():  # type: ignore[no-untyped-def]
+    from causeline.service.spec.dataset import DatasetSpec
+    from fixtures.demo.planted import DEFAULT_PLAN, planted_config
+
+    raw = planted_config(DEFAULT_PLAN)
+    raw.pop("training", None)
+    raw.pop("explain", None)
+    return DatasetSpec.model_validate(raw)
+
+
+def timing(folder: Path) -> None:
+    import yaml
+
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.effect.job import run_effect
+    from causeline.service.features.logs import RawPaths
+    from causeline.training.pipeline import train_timeline
+    from fixtures.demo.planted import DEFAULT_PLAN, planted_config
+    from fixtures.demo.timeline import planted_timeline, write_timeline
+
+    timeline, _ = planted_timeline(cases=320, days=365, seed=7)
+    write_timeline(timeline, folder)
+    paths = RawPaths(folder / "readings.parquet", folder / "excursions.parquet",
+                     folder / "maintenance.parquet", folder / "cases.parquet")
+    report("effect_readings", f"{len(timeline.readings):,}")
+    started = time.perf_counter()
+    run_effect(_spec(), paths, folder / "out")
+    report("effect_year_s", time.perf_counter() - started)
+    config = folder / "config.yaml"
+    config.write_text(yaml.safe_dump(planted_config(DEFAULT_PLAN)))
+    train_timeline(config, paths, folder / "bundle")
+    bundle = load_bundle(folder / "bundle")
+    started = time.perf_counter()
+    run_effect(_spec(), paths, folder / "out-model", bundle=bundle)
+    report("effect_year_with_model_s", time.perf_counter() - started)
+
+
+def coverage(cases: int, days: int, seeds: range) -> None:
+    import numpy as np
+
+    from causeline.service.effect.job import EffectOptions, study
+    from causeline.service.features.logs import TimelineInputs
+    from fixtures.demo.timeline import planted_timeline
+
+    options = EffectOptions()
+    spec = _spec()
+    covered = dict.fromkeys(MEASURED, 0)
+    zero, warned, worst, errors = 0, 0, (0.0, None, None), {k: [] for k in MEASURED}
+    for seed in seeds:
+        timeline, planted = planted_timeline(cases=cases, days=days, seed=seed)
+        inputs = TimelineInputs(timeline.readings, timeline.excursions, timeline.maintenance,
+                                timeline.cases)
+        table = study(spec, inputs, options).table.set_index("action_kind")
+        for kind in MEASURED:
+            row = table.loc[kind]
+            truth = planted.truth(kind, options.after)
+            low, high, effect = row["effect_low"], row["effect_high"], row["effect_per_1000"]
+            covered[kind] += int(low <= truth <= high)
+            errors[kind].append(effect - truth)
+            miss = abs(effect - truth) / ((high - low) / 2)
+            if miss > worst[0]:
+                worst = (miss, seed, kind)
+        zero += int(table.loc["firmware_update", "effect_low"] <= 0
+                    <= table.loc["firmware_update", "effect_high"])
+        warned += int(table.loc["leak_repair", "warning"].startswith("follows failures")
+                      and np.isnan(table.loc["leak_repair", "effect_per_1000"]))
+    n = len(seeds)
+    tag = f"{cases}x{days}"
+    for kind in MEASURED:
+        report(f"effect_coverage_{kind}_{tag}", f"{covered[kind]}/{n}")
+        report(f"effect_bias_{kind}_{tag}", float(np.mean(errors[kind])))
+        report(f"effect_rmse_{kind}_{tag}", float(np.sqrt(np.mean(np.square(errors[kind])))))
+    report(f"effect_no_effect_interval_holds_zero_{tag}", f"{zero}/{n}")
+    report(f"effect_repair_after_failures_warned_{tag}", f"{warned}/{n}")
+    report(f"effect_worst_seed_{tag}",
+           f"seed {worst[1]} {worst[2]}: miss {worst[0]:.2f} interval half-widths")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--seeds", type=int, default=20)
+    parser.add_argument("--no-timing", action="store_true")
+    args = parser.parse_args()
+    if not args.no_timing:
+        with tempfile.TemporaryDirectory(prefix="causeline-effect-") as folder:
+            timing(Path(folder))
+    # Fresh seeds, never used in the tests (21-26) or while building the study.
+    coverage(320, 365, range(5000, 5000 + args.seeds))
+    coverage(160, 300, range(6000, 6000 + args.seeds))
+
+
+if __name__ == "__main__":
+    assert ROOT.exists()
+    main()

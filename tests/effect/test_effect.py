@@ -1,0 +1,241 @@
+"""The fix-effect study (causeline effect) against worked examples and planted truth.
+
+- Card & Krueger (1994, AER 84(4)), as tabulated in Angrist & Pischke, *Mostly Harmless
+  Econometrics* (2009), table 5.2.1: mean full-time-equivalent employment per fast-food store
+  in New Jersey (minimum wage raised) and Pennsylvania (not), before and after. The numbers
+  below are quoted from memory of that table: NJ 20.44 -> 21.03, PA 23.33 -> 21.17, changes
+  +0.59 and -2.16, difference-in-differences 2.76 (from the unrounded means; the rounded cells
+  give 2.75).
+- Planted truth: fixtures/demo/planted.py redraws the demo fleet's events with known fix
+  effects and replays every case without its actions; the effect on the treated it defines is
+  the target. The 20-seed coverage study is bench/effect.py (docs/effect.md has its figures);
+  here three seeds of a smaller fleet.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import yaml
+
+from causeline.cli import main as causeline
+from causeline.service.effect.design import Stack, Window, stack
+from causeline.service.effect.estimate import StackedDiD
+from causeline.service.effect.job import EffectOptions, study
+from causeline.service.effect.link import links
+from causeline.service.effect.panel import entity_weeks
+from causeline.service.errors import ConfigError
+from causeline.service.features.logs import TimelineInputs
+from causeline.service.spec.dataset import DatasetSpec
+from causeline.training.config import load_config
+from fixtures.demo.planted import DEFAULT_PLAN, PlantedFix, planted_config
+from fixtures.demo.timeline import planted_timeline, write_timeline
+
+CONFIG = Path(__file__).resolve().parents[2] / "fixtures" / "demo" / "timeline.yaml"
+OPTIONS = EffectOptions(bootstrap=299)
+
+
+def _spec(plan: tuple[PlantedFix, ...] = DEFAULT_PLAN) -> DatasetSpec:
+    raw = planted_config(plan)
+    raw.pop("training", None)
+    raw.pop("explain", None)
+    return DatasetSpec.model_validate(raw)
+
+
+def _inputs(timeline) -> TimelineInputs:  # type: ignore[no-untyped-def]
+    return TimelineInputs(timeline.readings, timeline.excursions, timeline.maintenance,
+                          timeline.cases)
+
+
+def _two_group_stack(treated: list[tuple[float, float]], comparison: list[tuple[float, float]]
+                     ) -> Stack:
+    """One block: each store's mean before and after as events over 1,000 days (so its rate
+    per 1,000 days is the mean itself), split over two weeks either side of the action week."""
+    window = Window(2, 2)
+    rows = treated + comparison
+    events = np.zeros((len(rows), window.width))
+    days = np.zeros((len(rows), window.width))
+    for i, (before, after) in enumerate(rows):
+        events[i, [0, 1]] = before / 2
+        events[i, [3, 4]] = after / 2
+        days[i, [0, 1, 3, 4]] = 500.0
+    flags = np.array([True] * len(treated) + [False] * len(comparison))
+    return Stack(np.arange(len(rows)), np.zeros(len(rows), dtype=np.int64), flags, events, days,
+                 np.array([10]), window, actions=len(treated), episodes=len(treated),
+                 unmatched=0, edge=0, crowded=0)
+
+
+def test_card_krueger_difference_in_differences() -> None:
+    # Stores spread around the published means (the spreads cancel), so the bootstrap has
+    # something to resample; the point estimate depends only on the means.
+    nj = [(20.44 + d, 21.03 - d / 2) for d in (-3.0, 0.0, 3.0)]
+    pa = [(23.33 + d, 21.17 + d) for d in (-2.0, 0.0, 2.0)]
+    rates = StackedDiD(bootstrap=199).fit(_two_group_stack(nj, pa)).rates_
+    assert rates.treated_before == pytest.approx(20.44, abs=1e-9)
+    assert rates.treated_after == pytest.approx(21.03, abs=1e-9)
+    assert rates.comparison_before == pytest.approx(23.33, abs=1e-9)
+    assert rates.comparison_after == pytest.approx(21.17, abs=1e-9)
+    assert rates.treated_after - rates.treated_before == pytest.approx(0.59, abs=1e-9)
+    assert rates.comparison_after - rates.comparison_before == pytest.approx(-2.16, abs=1e-9)
+    assert rates.effect == pytest.approx(2.75, abs=1e-9)
+    # The published 2.76, up to the rounding of four cells to 0.005 each.
+    assert abs(rates.effect - 2.76) <= 0.02 + 1e-9
+    assert rates.low <= rates.effect <= rates.high
+
+
+def test_planted_effects_are_recovered() -> None:
+    # Six fresh seeds of a smaller fleet; 95 % intervals should cover the truth on about 5.7
+    # of them, and 4 or more covers happen with probability 0.998 when the intervals are right.
+    covered = {"coil_cleaning": 0, "firmware_update": 0}
+    found = 0
+    for seed in range(21, 27):
+        timeline, planted = planted_timeline(cases=160, days=300, seed=seed)
+        result = study(_spec(), _inputs(timeline), OPTIONS).table.set_index("action_kind")
+        for kind in covered:
+            row = result.loc[kind]
+            truth = planted.truth(kind, OPTIONS.after)
+            assert row["status"] == "measured", row["warning"]
+            covered[kind] += int(row["effect_low"] <= truth <= row["effect_high"])
+            # The printed parts add up to the effect.
+            parts = ((row["treated_after_per_1000"] - row["treated_before_per_1000"])
+                     - (row["comparison_after_per_1000"] - row["comparison_before_per_1000"]))
+            assert parts == pytest.approx(row["effect_per_1000"])
+        assert planted.truth("firmware_update", OPTIONS.after) == 0.0
+        found += int(result.loc["coil_cleaning", "effect_high"] < 0)  # a 40 % cut
+        repair = result.loc["leak_repair"]
+        assert repair["status"] == "no estimate"
+        assert repair["warning"].startswith("follows failures")
+        assert np.isnan(repair["effect_per_1000"]) and np.isnan(repair["treated_before_per_1000"])
+    assert min(covered.values()) >= 4, covered
+    assert found >= 4
+
+
+def test_too_few_treated_gives_no_number() -> None:
+    plan = (PlantedFix("coil_cleaning", 0.6, share=0.04), PlantedFix("firmware_update", 1.0))
+    timeline, _ = planted_timeline(cases=120, days=300, seed=4, plan=plan)
+    table = study(_spec(plan), _inputs(timeline), OPTIONS).table.set_index("action_kind")
+    row = table.loc["coil_cleaning"]
+    assert row["treated_entities"] < 10
+    assert "too few treated entities" in row["warning"] and np.isnan(row["effect_per_1000"])
+    assert table.loc["firmware_update", "status"] == "measured"
+
+
+def _uniform_logs(weeks: int, action_weeks: list[int | None]) -> TimelineInputs:
+    """Daily readings of entities for ``weeks`` weeks from a Monday; one action each where a
+    week is given; a failure every tenth day of every entity."""
+    start = pd.Timestamp("2025-01-06 06:00")
+    days = pd.date_range(start, periods=7 * weeks, freq="D")
+    names = [f"E{i:02d}" for i in range(len(action_weeks))]
+    readings = pd.DataFrame([(n, t, 1.0) for n in names for t in days],
+                            columns=["unit", "time", "load"])
+    failures = pd.DataFrame([(n, t + pd.Timedelta(hours=3)) for n in names
+                             for t in days[::10]], columns=["unit", "time"])
+    actions = pd.DataFrame([(n, start + pd.Timedelta(weeks=w, days=2), "service")
+                            for n, w in zip(names, action_weeks, strict=True) if w is not None],
+                           columns=["unit", "time", "kind"])
+    return TimelineInputs(readings, failures, actions)
+
+
+def _minimal_spec() -> DatasetSpec:
+    return DatasetSpec.model_validate({
+        "name": "units", "target": "failed", "id": "id", "time": "time", "entity": "unit",
+        "timeline": {"unit": "d", "readings": {"entity": "unit", "time": "time",
+                                               "measurements": ["load"]},
+                     "failures": {"entity": "unit", "time": "time"},
+                     "actions": {"entity": "unit", "time": "time", "kind_column": "kind",
+                                 "kinds": ["service"]},
+                     "snapshots": {"every": "1d"}, "horizon": "1d"},
+        "features": [{"name": "since_service_d", "role": "controllable"}],
+    })
+
+
+def test_no_comparison_group_gives_no_number() -> None:
+    # Every entity is serviced in the same week: nothing untreated to compare with.
+    inputs = _uniform_logs(20, [9] * 12)
+    row = study(_minimal_spec(), inputs, OPTIONS).table.iloc[0]
+    assert row["warning"].startswith("no comparison group") and np.isnan(row["effect_per_1000"])
+    assert row["episodes_unmatched"] == 12
+
+
+def test_a_kind_without_effect_on_a_flat_fleet_measures_zero() -> None:
+    # Identical entities, failures on a fixed schedule: every rate is the same, so is the
+    # change, whoever is treated; half the entities treated in staggered weeks.
+    inputs = _uniform_logs(30, [8, 9, 10, 11, 12, 13, 14, 15, 16, 17, 18, 19] + [None] * 12)
+    row = study(_minimal_spec(), inputs, EffectOptions(bootstrap=99)).table.iloc[0]
+    assert row["status"] == "measured", row["warning"]
+    assert abs(row["effect_per_1000"]) < 15  # schedule phase differs by entity; near zero
+    assert row["effect_low"] <= 0 <= row["effect_high"]
+    panel = entity_weeks(_minimal_spec().timeline, inputs)  # type: ignore[arg-type]
+    built = stack(panel, "service", Window())
+    assert built.count(True) == 12 and built.crowded == 0
+
+
+def test_kinds_link_to_their_fixes() -> None:
+    found = {(link.action_kind, link.fix_kind): link for link in links(_spec())}
+    assert found["coil_cleaning", "coil cleaning"].how == "its targets set since_coil_cleaning_d"
+    assert found["firmware_update", "firmware update"].how == "same name"
+    assert found["leak_repair", "leak search and repair"].codes == ("REFRIGERANT_LOW",)
+
+
+
+def test_a_fix_naming_an_untracked_kind_is_refused(tmp_path: Path) -> None:
+    raw = yaml.safe_load(CONFIG.read_text())
+    raw["reason_codes"][0]["fix"]["actions"] = ["leak_repairs"]
+    path = tmp_path / "config.yaml"
+    path.write_text(yaml.safe_dump(raw))
+    with pytest.raises(ConfigError, match=r"fix.actions: 'leak_repairs' is not one of"):
+        load_config(path)
+
+
+def test_model_estimate_beside_the_measured_effect(tmp_path: Path) -> None:
+    # The demo's own mechanisms (fixtures/demo/generate.py): a cleaner coil and the fixed
+    # firmware both lower the hazard, so the model's simulated fix must promise fewer events.
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.features.logs import RawPaths
+    from causeline.training.pipeline import train_timeline
+    from fixtures.demo.generate import generate
+    from fixtures.demo.timeline import from_frame
+
+    write_timeline(from_frame(generate(cases=70, days=240, seed=6)), tmp_path)
+    paths = RawPaths(tmp_path / "readings.parquet", tmp_path / "excursions.parquet",
+                     tmp_path / "maintenance.parquet", tmp_path / "cases.parquet")
+    train_timeline(CONFIG, paths, tmp_path / "bundle")
+    from causeline.service.effect.job import run_effect
+
+    table = run_effect(load_config(CONFIG), paths, tmp_path / "out", OPTIONS,
+                       load_bundle(tmp_path / "bundle")).table.set_index("action_kind")
+    for kind, target in (("coil_cleaning", "since_coil_cleaning_d <= 30"),
+                         ("firmware_update", "controller_firmware = 4.2.3")):
+        row = table.loc[kind]
+        assert row["model_targets"] == target
+        assert row["model_snapshots"] > 0 and row["model_effect_per_1000"] < 0, row.to_dict()
+
+
+def test_command_writes_csvs_summary_and_page(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
+    timeline, _ = planted_timeline(cases=80, days=240, seed=9)
+    write_timeline(timeline, tmp_path / "logs")
+    config = tmp_path / "config.yaml"
+    config.write_text(yaml.safe_dump(planted_config(DEFAULT_PLAN)))
+    logs = tmp_path / "logs"
+    args = ["effect", "--config", str(config), "--readings", str(logs / "readings.parquet"),
+            "--failures", str(logs / "excursions.parquet"), "--actions",
+            str(logs / "maintenance.parquet"), "--attributes", str(logs / "cases.parquet"),
+            "--bootstrap", "99", "--quiet", "--out", str(tmp_path / "out")]
+    assert causeline(args) == 0
+    out = tmp_path / "out"
+    names = {p.name for p in out.iterdir()}
+    assert {"coil-cleaning.csv", "firmware-update.csv", "leak-search-and-repair.csv",
+            "effects.csv", "weeks.csv", "summary.json", "report.html"} <= names
+    coil = pd.read_csv(out / "coil-cleaning.csv")
+    for column in ("treated_before_per_1000", "treated_after_per_1000", "effect_per_1000",
+                   "effect_low", "effect_high", "treated_entities", "comparison_entities",
+                   "model_effect_per_1000"):
+        assert column in coil.columns
+    page = (out / "report.html").read_text()
+    assert "Did the fix work?" in page and "<script" not in page and "follows failures" in page
+    assert "no number: follows failures" in capsys.readouterr().out
+    assert causeline([*args[:-2], "--weeks-before", "0", "--out", str(tmp_path / "x")]) == 2
+    assert causeline(["effect", "--config", str(config), "--out", str(tmp_path / "y")]) == 2
