@@ -125,6 +125,7 @@ def fit_bundle(
     reference = build_reference(
         Scorer(trees.booster, spec, stats, calibration, config.explain), spec,
         builder.categories, x, split.test, decision.threshold, config.training.seed,
+        entities=None if entities is None else int(entities.nunique()),
     )
     manifest = Manifest(
         schema_version=SCHEMA_VERSION,

@@ -57,6 +57,7 @@ class Reference(Strict):
 
     format: int
     rows: int
+    entities: int | None = None  # distinct entities in the training data, where named
     sampled: bool
     features: dict[str, FeatureReference]
     parts: dict[str, PartReference]

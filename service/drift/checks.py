@@ -10,8 +10,9 @@ outside the training range or in new categories (1 % and 5 %), the ROC AUC drop 
 the Brier score's rise (25 %, 50 %) and the observed-to-predicted ratio (1.25, 1.5) are this
 project's choices. The mix of codes among flagged events is reported but does not decide: it
 follows the handful of units that score high, and moved by Cohen's h up to 0.4 between two
-fresh draws of the same demo process. Features with role ``context`` (calendar, history) and codes over context
-features only are reported but do not decide: they move with the calendar by design.
+fresh draws of the same demo process. Features with role ``context`` (calendar, history) and
+codes over context features only are reported but do not decide: they move with the calendar by
+design.
 """
 
 from __future__ import annotations
@@ -53,6 +54,26 @@ LIMITS: dict[str, tuple[float, float]] = {
 
 
 @dataclass(frozen=True)
+class Units:
+    """How many independent units a test may count on each side.
+
+    Rows of one entity (a case, a machine) share its traits: a fleet of 80 cases seen for a
+    year is 80 draws of a case's age, not 29,200. Where the spec names an entity, tests count
+    at most the distinct entities on each side (conservative for values that change from row
+    to row); effect sizes always use every row.
+    """
+
+    window: int | None = None
+    reference: int | None = None
+
+    def n(self, rows: int) -> int:
+        return rows if self.window is None else min(rows, self.window)
+
+    def m(self, rows: int) -> int:
+        return rows if self.reference is None else min(rows, self.reference)
+
+
+@dataclass(frozen=True)
 class Finding:
     """One check on one subject (a feature, a code, the scores, calibration)."""
 
@@ -75,7 +96,7 @@ class Finding:
 
 
 def feature_findings(tally: FeatureTally, reference: Reference,
-                     roles: Mapping[str, str]) -> list[Finding]:
+                     roles: Mapping[str, str], units: Units) -> list[Finding]:
     out: list[Finding] = []
     for position, name in enumerate(tally.names):
         ref = reference.features[name]
@@ -85,7 +106,8 @@ def feature_findings(tally: FeatureTally, reference: Reference,
         missing = tally.missing[position] / max(rows, 1)
         out.append(Finding("features", name, "missing_share", missing, ref.missing_share,
                            cohen_h(missing, ref.missing_share),
-                           share_p_value(missing, rows, ref.missing_share, ref.rows), "h",
+                           share_p_value(missing, units.n(rows), ref.missing_share,
+                                         units.m(ref.rows)), "h",
                            decides))
         counts = tally.bins[position]
         present = int(counts.sum())
@@ -94,7 +116,8 @@ def feature_findings(tally: FeatureTally, reference: Reference,
             value = psi(np.asarray(ref.shares), shares)
             present_ref = round(ref.rows * (1.0 - ref.missing_share))
             out.append(Finding("features", name, "psi", value, None, value,
-                               psi_p_value(value, present, present_ref, len(ref.shares)), "psi",
+                               psi_p_value(value, units.n(present), units.m(present_ref),
+                                           len(ref.shares)), "psi",
                                decides))
         if ref.kind == "categorical":
             share = new / max(present + new, 1)
@@ -109,7 +132,7 @@ def feature_findings(tally: FeatureTally, reference: Reference,
 
 
 def code_findings(tally: CodeTally, part: PartReference, code_ids: Sequence[str],
-                  causes: np.ndarray) -> list[Finding]:
+                  causes: np.ndarray, units: Units) -> list[Finding]:
     out: list[Finding] = []
     share, flagged, mean, sd = tally.share(), tally.share_flagged(), tally.mean(), tally.sd()
     for i, code in enumerate(code_ids):
@@ -119,30 +142,34 @@ def code_findings(tally: CodeTally, part: PartReference, code_ids: Sequence[str]
         decides = bool(causes[i])
         out.append(Finding("codes", code, "share", share[i], ref.share,
                            cohen_h(share[i], ref.share),
-                           share_p_value(share[i], tally.rows, ref.share, part.rows), "h",
+                           share_p_value(share[i], units.n(tally.rows), ref.share,
+                                         units.m(part.rows)), "h",
                            decides))
         if tally.flagged and ref.share_flagged is not None:
             out.append(Finding("codes", code, "share_flagged", flagged[i], ref.share_flagged,
                                cohen_h(flagged[i], ref.share_flagged),
-                               share_p_value(flagged[i], tally.flagged, ref.share_flagged,
-                                             part.flagged), "h", False))
+                               share_p_value(flagged[i], units.n(tally.flagged),
+                                             ref.share_flagged, units.m(part.flagged)), "h",
+                               False))
         out.append(Finding("codes", code, "mean_contribution", mean[i], ref.mean_contribution,
                            cohen_d(mean[i], ref.mean_contribution, ref.sd_contribution),
-                           mean_p_value(mean[i], sd[i], tally.rows, ref.mean_contribution,
-                                        ref.sd_contribution, part.rows), "d", decides))
+                           mean_p_value(mean[i], sd[i], units.n(tally.rows), ref.mean_contribution,
+                                        ref.sd_contribution, units.m(part.rows)), "d", decides))
     return out
 
 
-def score_findings(tally: CodeTally, part: PartReference) -> list[Finding]:
+def score_findings(tally: CodeTally, part: PartReference, units: Units) -> list[Finding]:
     shares = tally.score_bins / max(tally.rows, 1)
     value = psi(np.asarray(part.score_shares), shares)
     above = tally.flagged / max(tally.rows, 1)
     return [
         Finding("scores", "probability", "psi", value, None, value,
-                psi_p_value(value, tally.rows, part.rows, len(part.score_shares)), "psi", True),
+                psi_p_value(value, units.n(tally.rows), units.m(part.rows),
+                            len(part.score_shares)), "psi", True),
         Finding("scores", "probability", "share_flagged", above, part.share_flagged,
                 cohen_h(above, part.share_flagged),
-                share_p_value(above, tally.rows, part.share_flagged, part.rows), "h", True),
+                share_p_value(above, units.n(tally.rows), part.share_flagged,
+                              units.m(part.rows)), "h", True),
     ]
 
 
@@ -250,15 +277,19 @@ def subject_table(findings: Sequence[Finding], alpha: float, area: str) -> pd.Da
         if f.area != area:
             continue
         row = rows.setdefault(f.subject, {area.rstrip("s"): f.subject, "level": "ok",
-                                          "flagged_by": "", "decides": f.decides})
+                                          "flagged_by": "", "also_moved": "",
+                                          "decides": f.decides})
         row[f.check] = f.value
         if f.reference is not None:
             row[f"{f.check}_reference"] = f.reference
         level = f.level(alpha)
-        if LEVELS.index(level) > LEVELS.index(str(row["level"])):
+        if level == "ok":
+            continue
+        # A check that does not decide (say the mix among flagged events) is shown apart.
+        key = "flagged_by" if f.decides else "also_moved"
+        row[key] = " ".join(filter(None, [str(row[key]), f"{f.check}({level})"]))
+        if f.decides and LEVELS.index(level) > LEVELS.index(str(row["level"])):
             row["level"] = level
-        if level != "ok":
-            row["flagged_by"] = " ".join(filter(None, [str(row["flagged_by"]), f.check]))
     return pd.DataFrame(list(rows.values()))
 
 

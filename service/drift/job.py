@@ -80,12 +80,15 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     text = list(dict.fromkeys([spec.id, *([spec.entity] if spec.entity else []),
                                *(f.source_column for f in categorical)]))
     labelled: list[tuple[np.ndarray, np.ndarray]] = []
+    entities: set[str] = set()
     progress.step("reading and scoring the window")
     for frame in chunks(bundle, source, text):
         matrix = bundle.builder.transform(frame)
         unseen = {f.name: _unseen(frame[f.source_column], bundle.builder.categories[f.name])
                   for f in categorical}
         features.add(matrix.values, unseen)
+        if spec.entity is not None and spec.entity in frame.columns:
+            entities.update(frame[spec.entity].dropna().astype(str).unique())
         scored = scorer.score(matrix.values)
         codes.add(scored)
         if options.label is not None:
@@ -98,9 +101,12 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
         window = "" if source.since is None and source.until is None else " in the window"
         raise DataError(f"{input_path}: no events of model {bundle.name!r}{window}")
     roles = {f.name: f.role for f in spec.features}
-    findings = checks.feature_findings(features, reference, roles)
-    findings += checks.code_findings(codes, part, scorer.code_ids, scorer.catalogue.causes)
-    findings += checks.score_findings(codes, part)
+    units = checks.Units(len(entities) or None, reference.entities) if spec.entity else \
+        checks.Units()
+    findings = checks.feature_findings(features, reference, roles, units)
+    findings += checks.code_findings(codes, part, scorer.code_ids, scorer.catalogue.causes,
+                                     units)
+    findings += checks.score_findings(codes, part, units)
     calibration = None
     if labelled:
         p = np.concatenate([pair[0] for pair in labelled])
@@ -114,6 +120,7 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     tables = _tables(findings, decided.alpha, features, codes, part, calibration)
     summary = _summary(bundle, reference, source, options, features.rows, codes, decided,
                        calibration)
+    summary["window"]["entities"] = len(entities) or None
     result = DriftResult(decided, summary, tables)
     if out is not None:
         _write(out, result)

@@ -22,7 +22,7 @@ CHUNK = 50_000
 
 def build_reference(
     scorer: Scorer, spec: DatasetSpec, categories: dict[str, list[str]], values: np.ndarray,
-    held_out: np.ndarray, threshold: float, seed: int = 0,
+    held_out: np.ndarray, threshold: float, seed: int = 0, entities: int | None = None,
 ) -> Reference:
     """The reference of a model built from ``values`` (rows x features, the builder's matrix)."""
     rng = np.random.default_rng(seed)
@@ -46,5 +46,6 @@ def build_reference(
         for scored in scores:
             tally.add(scored)
         parts[name] = tally.part(scorer.code_ids)
-    return Reference(format=REFERENCE_FORMAT, rows=int(values.shape[0]), sampled=sampled,
+    return Reference(format=REFERENCE_FORMAT, rows=int(values.shape[0]), entities=entities,
+                     sampled=sampled,
                      features=features, parts=parts)
