@@ -121,12 +121,26 @@ class Interval:
     high: float
 
 
+BOOTSTRAP_ROWS = 200_000
+
+
 def bootstrap(
     ranked: RankedScores, bins: np.ndarray, nbins: int, replicates: int = 200, seed: int = 0,
     level: float = 0.95,
 ) -> tuple[Interval, Interval, list[Interval]]:
-    """Percentile intervals of ROC AUC, Brier score and each bin's observed event rate."""
+    """Percentile intervals of ROC AUC, Brier score and each bin's observed event rate.
+
+    Past ``BOOTSTRAP_ROWS`` events the replicates are drawn from a random subset of that size
+    and their spread around the subset's estimate is scaled by ``sqrt(subset / all)`` and
+    centred on the estimate from every event (the spread of these smooth statistics shrinks
+    as one over the square root of the count)."""
     rng = np.random.default_rng(seed)
+    full, full_bins = ranked, bins
+    scale = 1.0
+    if ranked.y.size > BOOTSTRAP_ROWS:
+        subset = rng.choice(ranked.y.size, BOOTSTRAP_ROWS, replace=False)
+        scale = float(np.sqrt(BOOTSTRAP_ROWS / ranked.y.size))
+        ranked, bins = RankedScores(ranked.p[subset], ranked.y[subset]), bins[subset]
     n = ranked.y.size
     aucs, briers = np.empty(replicates), np.empty(replicates)
     rates = np.empty((replicates, nbins))
@@ -139,17 +153,21 @@ def bootstrap(
             rates[r] = events / counts
     tail = 100.0 * (1.0 - level) / 2.0
 
-    def interval(estimate: float, draws: np.ndarray) -> Interval:
+    def interval(estimate: float, centre: float, draws: np.ndarray) -> Interval:
         draws = draws[~np.isnan(draws)]
         if draws.size == 0:
             return Interval(estimate, float("nan"), float("nan"))
         low, high = np.percentile(draws, [tail, 100.0 - tail])
-        return Interval(estimate, float(low), float(high))
+        return Interval(estimate, float(estimate + (low - centre) * scale),
+                        float(estimate + (high - centre) * scale))
 
-    observed = np.bincount(bins, weights=ranked.y, minlength=nbins) / np.maximum(
-        np.bincount(bins, minlength=nbins), 1)
+    def observed(scores: RankedScores, where: np.ndarray) -> np.ndarray:
+        return np.bincount(where, weights=scores.y, minlength=nbins) / np.maximum(
+            np.bincount(where, minlength=nbins), 1)
+
+    rate, rate_subset = observed(full, full_bins), observed(ranked, bins)
     return (
-        interval(ranked.auc(), aucs),
-        interval(ranked.brier(), briers),
-        [interval(float(observed[b]), rates[:, b]) for b in range(nbins)],
+        interval(full.auc(), ranked.auc(), aucs),
+        interval(full.brier(), ranked.brier(), briers),
+        [interval(float(rate[b]), float(rate_subset[b]), rates[:, b]) for b in range(nbins)],
     )

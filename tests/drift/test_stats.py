@@ -97,3 +97,19 @@ def test_bootstrap_interval_of_auc_covers_the_binormal_value_with_its_known_spre
     se = math.sqrt((a * (1 - a) + (n1 - 1) * (q1 - a * a) + (n0 - 1) * (q2 - a * a)) / (n1 * n0))
     assert auc.low < a < auc.high
     assert 0.7 * 3.92 * se < auc.high - auc.low < 1.3 * 3.92 * se
+
+
+def test_a_large_window_bootstraps_a_subset_with_the_spread_scaled() -> None:
+    # 800,000 binormal events: the scaled interval must still hold the analytic AUC and be
+    # about 3.92 Hanley-McNeil standard errors wide (as above), now for n = 800,000.
+    rng = np.random.default_rng(7)
+    n1, n0 = 200_000, 600_000
+    p = np.concatenate([rng.normal(1, 1, n1), rng.normal(0, 1, n0)])
+    y = np.concatenate([np.ones(n1), np.zeros(n0)])
+    auc, _, _ = bootstrap(RankedScores(p, y), quantile_bins(p), 10, replicates=100, seed=8)
+    a = scipy_stats.norm.cdf(1 / math.sqrt(2))
+    q1, q2 = a / (2 - a), 2 * a * a / (1 + a)
+    se = math.sqrt((a * (1 - a) + (n1 - 1) * (q1 - a * a) + (n0 - 1) * (q2 - a * a)) / (n1 * n0))
+    assert auc.estimate == pytest.approx(roc_auc_score(y, p), abs=1e-12)
+    assert auc.low < a < auc.high
+    assert 0.7 * 3.92 * se < auc.high - auc.low < 1.3 * 3.92 * se
