@@ -7,7 +7,8 @@ window does not flag tiny differences and many features and codes do not make an
 window noisy. Thresholds (``LIMITS``): PSI 0.1 and 0.25 are common practice in credit scoring;
 Cohen's h and d of 0.2 and 0.5 are Cohen's (1988) "small" and "medium" conventions; the shares
 outside the training range or in new categories (1 % and 5 %), the ROC AUC drop (0.05, 0.10),
-the Brier score's rise (25 %, 50 %) and the observed-to-predicted ratio (1.25, 1.5) are this
+the Brier score's rise against the card's, both as shares of the score of always predicting
+the event rate (25 %, 50 %), and the observed-to-predicted ratio (1.25, 1.5) are this
 project's choices. The mix of codes among flagged events is reported but does not decide: it
 follows the handful of units that score high, and moved by Cohen's h up to 0.4 between two
 fresh draws of the same demo process. Features with role ``context`` (calendar, history) and
@@ -205,11 +206,18 @@ def calibration_checks(p: np.ndarray, y: np.ndarray, card: Mapping[str, object],
         findings.append(Finding("calibration", "model", "roc_auc", auc.estimate, card_auc,
                                 card_auc - auc.estimate, 0.0 if outside else 1.0, "auc_drop",
                                 True))
-    if isinstance(card_brier, float) and card_brier > 0:
-        outside = brier.low > card_brier
+    card_rate = _rate(card)
+    window_rate = float(y.mean())
+    if isinstance(card_brier, float) and card_brier > 0 and card_rate is not None:
+        # Brier scores compared as shares of what always predicting the event rate would score
+        # (1 - Brier skill score): a fleet with more events has a larger Brier score with no
+        # loss of calibration at all.
+        card_scaled = card_brier / (card_rate * (1.0 - card_rate))
+        spread = window_rate * (1.0 - window_rate)
+        outside = brier.low / spread > card_scaled
         findings.append(Finding("calibration", "model", "brier", brier.estimate, card_brier,
-                                brier.estimate / card_brier - 1.0, 0.0 if outside else 1.0,
-                                "brier_rise", True))
+                                brier.estimate / spread / card_scaled - 1.0,
+                                0.0 if outside else 1.0, "brier_rise", True))
     observed, expected = float(y.mean()), float(p.mean())
     spread = float(np.sqrt(np.sum(p * (1.0 - p)))) / p.size
     from scipy import stats
@@ -228,6 +236,13 @@ def calibration_checks(p: np.ndarray, y: np.ndarray, card: Mapping[str, object],
         "bootstrap_replicates": replicates,
     }
     return Calibration(table, findings, summary)
+
+
+def _rate(card: Mapping[str, object]) -> float | None:
+    rows, events = card.get("rows"), card.get("events")
+    if isinstance(rows, int) and isinstance(events, int) and 0 < events < rows:
+        return events / rows
+    return None
 
 
 def _interval(interval) -> dict[str, float]:  # type: ignore[no-untyped-def]
