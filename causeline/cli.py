@@ -136,6 +136,7 @@ def _parser() -> argparse.ArgumentParser:
     effect.add_argument("--seed", type=int, default=0, help="bootstrap seed (default 0)")
     effect.add_argument("--quiet", action="store_true", help="no progress on standard error")
     effect.set_defaults(run=_effect)
+    _drift_parser(commands)
 
     serve = commands.add_parser(
         "serve", help="serve scores with reason codes over HTTP (settings: CAUSELINE_* variables)"
@@ -367,6 +368,38 @@ def _effect(args: argparse.Namespace) -> int:
         print(line)
     print("Measured under parallel trends on past logs; see docs/effect.md before acting.")
     return 0
+def _drift_parser(commands) -> None:  # type: ignore[no-untyped-def]
+    drift = commands.add_parser(
+        "drift", help="is the model still right? recent events against the training reference",
+        description="Exit status: 0 ok, 10 watch, 11 retrain, 2 a problem you can fix.")
+    drift.add_argument("--bundle", required=True, type=Path, help="a trained bundle folder")
+    drift.add_argument("--input", required=True, type=Path,
+                       help="CSV, JSONL or Parquet table, or a prediction-log folder")
+    drift.add_argument("--out", required=True, type=Path, help="output folder")
+    drift.add_argument("--since", help="first time to include (inclusive)")
+    drift.add_argument("--until", help="time to stop before (exclusive)")
+    drift.add_argument("--label", metavar="COLUMN",
+                       help="0/1 outcome column: adds the calibration checks")
+    drift.add_argument("--against", choices=("training", "held-out"), default="training",
+                       help="reference part for codes and scores (default: every training row)")
+    drift.add_argument("--quiet", action="store_true", help="no progress on standard error")
+    drift.set_defaults(run=_drift)
+
+
+def _drift(args: argparse.Namespace) -> int:
+    from causeline.service.bundle.load import load_bundle
+    from causeline.service.drift.job import EXIT_CODES, DriftOptions, run_drift
+
+    options = DriftOptions(since=args.since, until=args.until, label=args.label,
+                           against=args.against)
+    result = run_drift(load_bundle(args.bundle), args.input, args.out, options,
+                       progress=_progress(args))
+    window = result.summary["window"]
+    print(f"checked {window['events']} events -> {args.out}")
+    print(f"verdict: {result.verdict.level}")
+    for item in result.verdict.decided_by[:12]:
+        print(f"  {item['level']:<8} {item['area']:<12} {item['subject']:<28} {item['check']}")
+    return EXIT_CODES[result.verdict.level]
 
 
 def _serve(args: argparse.Namespace) -> int:

@@ -26,6 +26,9 @@ from causeline.service.bundle.manifest import (
     ExplainerInfo,
     Manifest,
 )
+from causeline.service.bundle.reference import REFERENCE, Reference
+from causeline.service.drift.reference import build_reference
+from causeline.service.drift.tally import Scorer
 from causeline.service.errors import DataError
 from causeline.service.explain.fastshap import FastTreeExplainer
 from causeline.service.explain.score import calibrate
@@ -66,8 +69,9 @@ def train(config_path: Path, data_path: Path, out: Path) -> TrainResult:
     table = read_table(data_path, text_columns=[config.id])
     if len(table) == 0:
         raise DataError(f"{data_path}: the file has a header but no rows")
-    manifest, model_text = fit_bundle(config, table, fingerprint=sha256_file(Path(data_path)))
-    write_bundle(out, manifest, model_text)
+    manifest, model_text, reference = fit_bundle(
+        config, table, fingerprint=sha256_file(Path(data_path)))
+    write_bundle(out, manifest, model_text, reference)
     # Load what was written, so a bundle that would not load is never reported as trained.
     bundle = load_bundle(out)
     return TrainResult(path=Path(out), manifest=bundle.manifest)
@@ -77,8 +81,9 @@ def train_timeline(config_path: Path, paths: RawPaths, out: Path) -> TrainResult
     """Train straight from raw timelines: build the snapshot table, then as :func:`train`."""
     config = load_config(config_path)
     built = build_table(config, read_inputs(config, paths))
-    manifest, model_text = fit_bundle(config, built.table, paths.fingerprint(), built.counts)
-    write_bundle(out, manifest, model_text)
+    manifest, model_text, reference = fit_bundle(
+        config, built.table, paths.fingerprint(), built.counts)
+    write_bundle(out, manifest, model_text, reference)
     bundle = load_bundle(out)
     return TrainResult(path=Path(out), manifest=bundle.manifest, notes=tuple(built.notes))
 
@@ -86,8 +91,9 @@ def train_timeline(config_path: Path, paths: RawPaths, out: Path) -> TrainResult
 def fit_bundle(
     config: TrainConfig, table: pd.DataFrame, fingerprint: str,
     snapshot_counts: dict[str, int] | None = None,
-) -> tuple[Manifest, str]:
-    """Everything ``train`` does short of writing files: the manifest and the text model.
+) -> tuple[Manifest, str, Reference]:
+    """Everything ``train`` does short of writing files: the manifest, the text model and the
+    drift reference (the data as the model saw it, for ``causeline drift``).
 
     ``snapshot_counts``: the counts of a table built from timelines, for the model card."""
     builder = FeatureBuilder(config.features, learn_categories(table, config))
@@ -114,15 +120,22 @@ def fit_bundle(
     p_test = calibrate(calibration, _raw(trees.booster, x[split.test]))
     created = datetime.now(UTC)
     base_value = contributions(trees.booster, x[:1]).base_value
+    stats = feature_stats(matrix, builder.categories)
+    spec = config.dataset_spec()
+    reference = build_reference(
+        Scorer(trees.booster, spec, stats, calibration, config.explain), spec,
+        builder.categories, x, split.test, decision.threshold, config.training.seed,
+        entities=None if entities is None else int(entities.nunique()),
+    )
     manifest = Manifest(
         schema_version=SCHEMA_VERSION,
         name=config.name,
         version=f"{created:%Y%m%d.%H%M%S}-{fingerprint[:8]}",
         created=created.isoformat(timespec="seconds"),
-        dataset=config.dataset_spec(),
+        dataset=spec,
         # Ranges and typical values describe all the data the model was built from: with a
         # time split, the fit part alone would call every later month 'out of range'.
-        stats=feature_stats(matrix, builder.categories),
+        stats=stats,
         explain=config.explain,
         calibration=calibration,
         decision=decision,
@@ -141,8 +154,9 @@ def fit_bundle(
         },
         data_fingerprint=fingerprint,
         libraries=_libraries(),
+        reference=REFERENCE,
     )
-    return manifest, trees.booster.model_to_string()
+    return manifest, trees.booster.model_to_string(), reference
 
 
 def _held_out(times: pd.Series | None, split: Split, matrix: FeatureMatrix,
@@ -185,7 +199,7 @@ def _libraries() -> dict[str, str]:
     return versions
 
 
-def write_bundle(out: Path, manifest: Manifest, model_text: str) -> None:
+def write_bundle(out: Path, manifest: Manifest, model_text: str, reference: Reference) -> None:
     """Write all files into a staging folder, checksum them, then move it into place."""
     out = Path(out)
     if out.exists() and not (out / CHECKSUMS).is_file():
@@ -197,4 +211,7 @@ def write_bundle(out: Path, manifest: Manifest, model_text: str) -> None:
             "utf-8",
         )
         (staging / CARD).write_text(model_card(manifest), "utf-8")
-        (staging / CHECKSUMS).write_text(checksum_text(staging, [MANIFEST, MODEL, CARD]), "utf-8")
+        (staging / REFERENCE).write_text(
+            json.dumps(reference.model_dump(mode="json"), allow_nan=False) + "\n", "utf-8")
+        (staging / CHECKSUMS).write_text(
+            checksum_text(staging, [MANIFEST, MODEL, CARD, REFERENCE]), "utf-8")

@@ -30,6 +30,9 @@ Message = MutableMapping[str, Any]
 ASGIApp = Callable[[Scope, Callable[[], Awaitable[Message]], Callable[[Message], Awaitable[None]]],
                    Awaitable[None]]
 
+# The recent-events gauges cover about this many of each model's latest scored events.
+RECENT_EVENTS = 1000
+
 # Milliseconds matter for a scoring call; the buckets stretch to a few seconds for big batches.
 LATENCY_BUCKETS = (0.001, 0.0025, 0.005, 0.0075, 0.01, 0.015, 0.02, 0.03, 0.05, 0.075, 0.1,
                    0.25, 0.5, 1.0, 2.5, 5.0)
@@ -86,14 +89,36 @@ class Metrics:
         self.log_queue = Gauge(
             "causeline_prediction_log_queue_records", "Records waiting to be written", registry=r
         )
+        self.recent_share = Gauge(
+            "causeline_recent_reason_code_share",
+            f"Share of the latest ~{RECENT_EVENTS} scored events carrying each reason code",
+            ["model", "code"], registry=r,
+        )
+        self.recent_probability = Gauge(
+            "causeline_recent_mean_probability",
+            f"Mean calibrated probability of the latest ~{RECENT_EVENTS} scored events",
+            ["model"], registry=r,
+        )
+        self.recent_events = Gauge(
+            "causeline_recent_events", "Scored events the recent-events gauges cover", ["model"],
+            registry=r,
+        )
+        self._recent: dict[str, Recent] = {}
 
-    def count_scored(self, model: str, events: int, codes: list[str]) -> None:
-        """Events scored by ``model`` and the reason codes they were given."""
+    def count_scored(self, model: str, events: int, codes: list[str],
+                     probability: float = 0.0) -> None:
+        """Events scored by ``model``, the reason codes they were given and the sum of their
+        probabilities (for the recent-events gauges, brought up to date when scraped)."""
         scored = self._events_series.get(model)
         if scored is None:
             scored = self._events_series[model] = self.events.labels(model)
         scored.inc(events)
-        for code, times in collections.Counter(codes).items():
+        counts = collections.Counter(codes)
+        recent = self._recent.get(model)
+        if recent is None:
+            recent = self._recent[model] = Recent(RECENT_EVENTS)
+        recent.add(events, probability, counts)
+        for code, times in counts.items():
             series = self._reason_series.get((model, code))
             if series is None:  # labels() locks and builds a key: once per model and code
                 series = self._reason_series[(model, code)] = self.reasons.labels(model, code)
@@ -106,7 +131,38 @@ class Metrics:
             self.model_info.labels(name, version).set(1)
 
     def exposition(self) -> tuple[bytes, str]:
+        for model, recent in list(self._recent.items()):
+            events = recent.events
+            self.recent_events.labels(model).set(events)
+            self.recent_probability.labels(model).set(recent.probability / max(events, 1))
+            for code, count in list(recent.codes.items()):
+                self.recent_share.labels(model, code).set(count / max(events, 1))
         return generate_latest(self.registry), CONTENT_TYPE_LATEST
+
+
+class Recent:
+    """A sliding window over the latest scored events, kept per batch: a batch costs one append
+    and a counter update, and whole batches leave once ``size`` later events have come.
+    An event carries a code at most once, so code counts are events with the code."""
+
+    def __init__(self, size: int) -> None:
+        self.size = size
+        self.batches: collections.deque[tuple[int, float, collections.Counter[str]]] = (
+            collections.deque())
+        self.events = 0
+        self.probability = 0.0
+        self.codes: collections.Counter[str] = collections.Counter()
+
+    def add(self, events: int, probability: float, codes: collections.Counter[str]) -> None:
+        self.batches.append((events, probability, codes))
+        self.events += events
+        self.probability += probability
+        self.codes.update(codes)
+        while self.batches and self.events - self.batches[0][0] >= self.size:
+            old_events, old_probability, old_codes = self.batches.popleft()
+            self.events -= old_events
+            self.probability -= old_probability
+            self.codes.subtract(old_codes)
 
 
 class MetricsMiddleware:

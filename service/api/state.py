@@ -102,7 +102,8 @@ class Service:
         if not results:
             return
         codes = [reason["code"] for result in results for reason in result["reasons"]]
-        self.metrics.count_scored(model.name, len(results), codes)
+        self.metrics.count_scored(model.name, len(results), codes,
+                                  sum(result["probability"] for result in results))
         if self.log is not None:
             self.log.submit(log_records(model, events, results))
 

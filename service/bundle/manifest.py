@@ -70,6 +70,8 @@ class Manifest(Strict):
     training: dict[str, Any]
     data_fingerprint: str
     libraries: dict[str, str]
+    # The drift reference's file (``reference.py``); None in bundles trained before it was kept.
+    reference: str | None = None
 
     def categories(self) -> dict[str, tuple[str, ...]]:
         return {

@@ -50,6 +50,7 @@ from causeline.service.dask.partitions import Block, joined_rejects, read_partit
 from causeline.service.errors import DataError
 from causeline.service.files.predlog import is_prediction_log
 from causeline.service.files.rejects import REASON, ROW
+from causeline.service.files.window import window_mask
 from causeline.service.progress import Progress, Silent
 from causeline.service.rootcause.fix import Target
 from causeline.service.rootcause.grouping import (
@@ -61,7 +62,7 @@ from causeline.service.rootcause.grouping import (
     cause_mix,
     sample_keys,
 )
-from causeline.service.rootcause.intake import EventInput, event_times, screen_rows, window_mask
+from causeline.service.rootcause.intake import EventInput, event_times, screen_rows
 from causeline.service.rootcause.job import (
     STEPS,
     Grouping,

@@ -35,6 +35,7 @@ from causeline.service.files.rejects import (
     read_lenient,
 )
 from causeline.service.files.tables import binary_column, to_numbers
+from causeline.service.files.window import utc_times
 
 LOG_TIME = "log_logged_at"
 LOG_ID = "log_id"
@@ -118,7 +119,7 @@ def latest_entries(table: pd.DataFrame, id_column: str) -> np.ndarray:
         return keep
     ids = table[id_column].astype("string")
     has_id = (ids.str.strip() != "").fillna(False).to_numpy(dtype=bool)
-    times = _utc_times(table, LOG_TIME)
+    times = utc_times(table, LOG_TIME)
     order = pd.DataFrame({"id": ids, "time": times, "position": np.arange(len(table))})[has_id]
     order = order.sort_values(["time", "position"], na_position="first", kind="stable")
     keep[has_id] = False
@@ -131,46 +132,9 @@ def event_labels(column: pd.Series, name: str) -> np.ndarray:
     return binary_column(column, name, "label")
 
 
-def parse_time(text: str | None, option: str) -> pd.Timestamp | None:
-    """A ``--since``/``--until`` value as a UTC time; dates without a zone are taken as UTC."""
-    if text is None:
-        return None
-    try:
-        stamp = pd.Timestamp(text)
-    except (ValueError, TypeError):
-        raise DataError(f"{option} {text!r} is not a date or time") from None
-    if pd.isna(stamp):
-        raise DataError(f"{option} {text!r} is not a date or time")
-    return stamp.tz_localize("UTC") if stamp.tzinfo is None else stamp.tz_convert("UTC")
-
-
 def event_times(events: EventInput) -> pd.Series:
     """Each row's time (UTC), NaT where there is no time column or a value is not a time."""
-    return _utc_times(events.table, events.time_column)
-
-
-def _utc_times(table: pd.DataFrame, column: str | None) -> pd.Series:
-    if column is None or column not in table.columns:
-        return pd.Series(pd.NaT, index=table.index, dtype="datetime64[ns, UTC]")
-    return pd.to_datetime(table[column], errors="coerce", utc=True, format="mixed")
-
-
-def window_mask(
-    times: pd.Series, since: pd.Timestamp | None, until: pd.Timestamp | None, column: str | None
-) -> np.ndarray:
-    """Rows with ``since <= time < until`` (half-open, so back-to-back windows never overlap)."""
-    keep = np.ones(len(times), dtype=bool)
-    if since is None and until is None:
-        return keep
-    if column is None:
-        raise DataError("--since/--until need a time column, and the bundle's spec names none")
-    if times.isna().all():
-        raise DataError(f"--since/--until: column {column!r} holds no readable times")
-    if since is not None:
-        keep &= (times >= since).fillna(False).to_numpy(dtype=bool)
-    if until is not None:
-        keep &= (times < until).fillna(False).to_numpy(dtype=bool)
-    return keep
+    return utc_times(events.table, events.time_column)
 
 
 @dataclass(frozen=True)

@@ -31,6 +31,7 @@ from causeline.service.files.rejects import (
 from causeline.service.files.spreadsheet import escape_frame
 from causeline.service.files.storage import atomic_directory
 from causeline.service.files.tables import write_table
+from causeline.service.files.window import parse_time
 from causeline.service.progress import Progress, Silent
 from causeline.service.rootcause import report as htmlreport
 from causeline.service.rootcause.fix import Target, fix_targets
@@ -41,7 +42,6 @@ from causeline.service.rootcause.grouping import (
     find_groups,
     label_for,
 )
-from causeline.service.rootcause.intake import parse_time
 from causeline.service.rootcause.tally import (
     Tally,
     group_row,

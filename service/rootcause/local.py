@@ -16,6 +16,7 @@ from causeline.service.errors import DataError
 from causeline.service.explain.explainer import Explainer
 from causeline.service.features.logs import RawPaths
 from causeline.service.files.predlog import is_prediction_log
+from causeline.service.files.window import window_mask
 from causeline.service.progress import Progress, Silent
 from causeline.service.rootcause.fix import Target
 from causeline.service.rootcause.grouping import (
@@ -32,7 +33,6 @@ from causeline.service.rootcause.intake import (
     events_from_logs,
     read_events,
     screen_rows,
-    window_mask,
 )
 from causeline.service.rootcause.job import (
     STEPS,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import collections
 import gc
 import json
 import shutil
@@ -766,6 +767,22 @@ def test_full_log_queue_drops_and_counts(tmp_path: Path) -> None:
     assert metric(text, "causeline_prediction_log_records_total") == 2
     assert len(read_prediction_log(tmp_path / "log")) == 2
     assert metric(text, "causeline_prediction_log_queue_records") == 0
+
+
+def test_metrics_show_recent_shares_and_mean_probability(
+    make_client: Callable[..., TestClient], events: list[dict]
+) -> None:
+    client = make_client()
+    results = client.post("/v1/score", json={"events": events}).json()["results"]
+    text = client.get("/metrics").text
+    assert metric(text, "causeline_recent_events") == len(events)
+    mean = sum(result["probability"] for result in results) / len(results)
+    assert metric(text, "causeline_recent_mean_probability") == pytest.approx(mean)
+    codes = collections.Counter(r["code"] for result in results for r in result["reasons"])
+    assert codes
+    for code, count in codes.items():
+        share = metric(text, "causeline_recent_reason_code_share", code=code)
+        assert share == pytest.approx(count / len(events))
 
 
 # ---------------------------------------------------------------- bundle swap

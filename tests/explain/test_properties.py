@@ -122,9 +122,9 @@ def inputs(spec: dict[str, Any]) -> st.SearchStrategy[pd.DataFrame]:
 @given(spec=model_specs(), data=st.data())
 def test_explanations_hold_their_invariants(spec: dict[str, Any], data: st.DataObject) -> None:
     config = TrainConfig.model_validate(spec["config"])
-    manifest, model_text = fit_bundle(config, training_table(spec), fingerprint="0" * 64)
+    manifest, model_text, reference = fit_bundle(config, training_table(spec), fingerprint="0" * 64)
     with tempfile.TemporaryDirectory() as folder:
-        write_bundle(Path(folder) / "bundle", manifest, model_text)
+        write_bundle(Path(folder) / "bundle", manifest, model_text, reference)
         bundle = load_bundle(Path(folder) / "bundle")
     explainer = Explainer(bundle)
     catalogue = explainer.catalogue

@@ -51,9 +51,9 @@ def bundle(tmp_path_factory: pytest.TempPathFactory) -> Bundle:
                              "down": 100, "down: after failure": 100,
                              "down: until readings resume or a repair": 0,
                              "down: readings missing": 0}
-    manifest, model = fit_bundle(CONFIG, result.table, fingerprint="0" * 64)
+    manifest, model, reference = fit_bundle(CONFIG, result.table, fingerprint="0" * 64)
     out = tmp_path_factory.mktemp("cmapss") / "bundle"
-    write_bundle(out, manifest, model)
+    write_bundle(out, manifest, model, reference)
     return load_bundle(out)
 
 

@@ -1,0 +1,194 @@
+"""What the drift checks count, chunk by chunk: sums that add up, so memory stays bounded.
+
+A :class:`Scorer` turns a feature matrix into calibrated probabilities, per-code contributions
+and the codes each event carries (the same ranking as the explanations: the ``top_k`` largest
+above ``min_contribution``). :class:`FeatureTally` and :class:`CodeTally` add chunks up; the
+reference stored at training time and the window checked later are counted by the same code.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+
+import lightgbm as lgb
+import numpy as np
+
+from causeline.service.bundle.load import Bundle
+from causeline.service.bundle.manifest import Calibration, FeatureStats
+from causeline.service.bundle.reference import CodeReference, FeatureReference, PartReference
+from causeline.service.drift.stats import bin_counts
+from causeline.service.explain.fastshap import FastTreeExplainer
+from causeline.service.explain.reasons import ReasonCatalogue
+from causeline.service.explain.score import calibrate
+from causeline.service.spec.dataset import DatasetSpec, ExplainSettings
+
+
+@dataclass(frozen=True)
+class Scored:
+    """One chunk's scores: probability, per-code contributions and the codes carried."""
+
+    probability: np.ndarray
+    codes: np.ndarray  # (events, codes), log-odds
+    carried: np.ndarray  # (events, codes), bool
+
+
+class Scorer:
+    """Probabilities and reason codes of a feature matrix, without rendering any text."""
+
+    def __init__(self, booster: lgb.Booster, spec: DatasetSpec, stats: Mapping[str, FeatureStats],
+                 calibration: Calibration, settings: ExplainSettings) -> None:
+        self.engine = FastTreeExplainer(booster)
+        self.catalogue = ReasonCatalogue(spec, stats)
+        self.calibration = calibration
+        self.top_k = settings.top_k
+        self.min_contribution = settings.min_contribution
+
+    @classmethod
+    def of(cls, bundle: Bundle) -> Scorer:
+        m = bundle.manifest
+        return cls(bundle.booster, m.dataset, m.stats, m.calibration, m.explain)
+
+    @property
+    def code_ids(self) -> list[str]:
+        return self.catalogue.code_ids
+
+    def score(self, values: np.ndarray) -> Scored:
+        contributions = self.engine.contributions(values)
+        codes = self.catalogue.aggregate(contributions.values, values)
+        return Scored(calibrate(self.calibration, contributions.raw), codes,
+                      carried(codes, self.top_k, self.min_contribution))
+
+
+def carried(codes: np.ndarray, top_k: int, min_contribution: float) -> np.ndarray:
+    """Per event and code, whether the code is among the event's reasons (as
+    :meth:`ReasonCatalogue.rank` picks them: stable order, ``top_k``, above the minimum)."""
+    k = min(top_k, codes.shape[1])
+    order = np.argsort(-codes, axis=1, kind="stable")[:, :k]
+    rows = np.arange(codes.shape[0])[:, None]
+    out = np.zeros(codes.shape, dtype=bool)
+    out[rows, order] = codes[rows, order] > min_contribution
+    return out
+
+
+@dataclass
+class CodeTally:
+    """Sums over events of each code's presence and contribution, and of the scores."""
+
+    codes: int
+    score_cuts: np.ndarray
+    threshold: float
+    rows: int = 0
+    flagged: int = 0
+    carried: np.ndarray = field(init=False)
+    carried_flagged: np.ndarray = field(init=False)
+    total: np.ndarray = field(init=False)
+    squares: np.ndarray = field(init=False)
+    score_bins: np.ndarray = field(init=False)
+    probability: float = 0.0
+
+    def __post_init__(self) -> None:
+        self.carried = np.zeros(self.codes, dtype=np.int64)
+        self.carried_flagged = np.zeros(self.codes, dtype=np.int64)
+        self.total = np.zeros(self.codes)
+        self.squares = np.zeros(self.codes)
+        self.score_bins = np.zeros(self.score_cuts.size + 1, dtype=np.int64)
+
+    def add(self, scored: Scored) -> None:
+        flagged = scored.probability >= self.threshold
+        self.rows += scored.probability.size
+        self.flagged += int(flagged.sum())
+        self.carried += scored.carried.sum(axis=0)
+        self.carried_flagged += scored.carried[flagged].sum(axis=0)
+        self.total += scored.codes.sum(axis=0)
+        self.squares += np.square(scored.codes).sum(axis=0)
+        self.score_bins += bin_counts(scored.probability, self.score_cuts)
+        self.probability += float(scored.probability.sum())
+
+    def share(self) -> np.ndarray:
+        return self.carried / max(self.rows, 1)
+
+    def share_flagged(self) -> np.ndarray:
+        return self.carried_flagged / max(self.flagged, 1)
+
+    def mean(self) -> np.ndarray:
+        return self.total / max(self.rows, 1)
+
+    def sd(self) -> np.ndarray:
+        n = max(self.rows, 1)
+        return np.sqrt(np.maximum(self.squares / n - np.square(self.total / n), 0.0))
+
+    def part(self, code_ids: Sequence[str]) -> PartReference:
+        """The tally as a stored reference part."""
+        share, flagged, mean, sd = self.share(), self.share_flagged(), self.mean(), self.sd()
+        return PartReference(
+            rows=self.rows, flagged=self.flagged,
+            codes={code: CodeReference(
+                share=float(share[i]),
+                share_flagged=float(flagged[i]) if self.flagged else None,
+                mean_contribution=float(mean[i]), sd_contribution=float(sd[i]),
+            ) for i, code in enumerate(code_ids)},
+            score_cuts=tuple(float(c) for c in self.score_cuts),
+            score_shares=tuple(float(s) for s in self.score_bins / max(self.rows, 1)),
+            mean_probability=self.probability / max(self.rows, 1),
+            share_flagged=self.flagged / max(self.rows, 1),
+        )
+
+
+@dataclass
+class FeatureTally:
+    """Per feature: rows, missing values, counts per reference bin or category, values outside
+    the training range, and values of categories training never saw."""
+
+    references: Mapping[str, FeatureReference]
+    names: Sequence[str]
+    low: np.ndarray
+    high: np.ndarray
+    rows: int = 0
+    missing: np.ndarray = field(init=False)
+    outside: np.ndarray = field(init=False)
+    bins: list[np.ndarray] = field(init=False)
+    unseen: dict[str, Counter[str]] = field(init=False)
+
+    def __post_init__(self) -> None:
+        self.missing = np.zeros(len(self.names), dtype=np.int64)
+        self.outside = np.zeros(len(self.names), dtype=np.int64)
+        self.bins = [np.zeros(len(self.references[n].shares), dtype=np.int64) for n in self.names]
+        self.unseen = {name: Counter() for name in self.names}
+
+    def add(self, values: np.ndarray, unseen: Mapping[str, Counter[str]]) -> None:
+        """A chunk's feature matrix, and per categorical feature the unknown values it held
+        (the feature builder reads those as missing; here they count as new, not missing)."""
+        self.rows += values.shape[0]
+        with np.errstate(invalid="ignore"):
+            self.outside += ((values < self.low) | (values > self.high)).sum(axis=0)
+        missing = np.isnan(values).sum(axis=0)
+        for position, name in enumerate(self.names):
+            reference = self.references[name]
+            column = values[:, position]
+            new = sum(unseen.get(name, Counter()).values())
+            self.unseen[name].update(unseen.get(name, Counter()))
+            self.missing[position] += missing[position] - new
+            if reference.kind == "categorical":
+                present = column[~np.isnan(column)].astype(np.int64)
+                self.bins[position] += np.bincount(present, minlength=len(reference.shares))
+            else:
+                self.bins[position] += bin_counts(column, np.asarray(reference.cuts))
+
+
+def feature_reference(values: np.ndarray, kind: str, categories: int) -> FeatureReference:
+    """One column's reference: decile bins (numeric) or category shares, and missing share."""
+    from causeline.service.drift.stats import decile_cuts
+
+    present = values[~np.isnan(values)]
+    missing = 1.0 - present.size / max(values.size, 1)
+    if kind == "categorical":
+        counts = np.bincount(present.astype(np.int64), minlength=categories)
+        return FeatureReference(kind=kind, rows=int(values.size), missing_share=missing,
+                                shares=tuple(float(s) for s in counts / max(present.size, 1)))
+    cuts = decile_cuts(values)
+    counts = bin_counts(values, cuts)
+    return FeatureReference(kind=kind, rows=int(values.size), missing_share=missing,
+                            cuts=tuple(float(c) for c in cuts),
+                            shares=tuple(float(s) for s in counts / max(present.size, 1)))

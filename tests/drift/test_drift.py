@@ -1,0 +1,127 @@
+"""The drift job end to end on the demo fleet: planted shifts against fresh unchanged draws.
+
+The truth is planted in the generator (``fixtures/demo/generate.py``, ``SHIFTS``): what each
+shift changes, and so which features and reason codes it touches. Fresh seeds are other fleets
+of the same process; they must come out ``ok``. The false-alarm rate over 20 seeds and both
+domains is measured by ``bench/drift.py --study`` (figures in docs/drift.md).
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from causeline.cli import main
+from causeline.service.bundle.load import Bundle
+from causeline.service.bundle.manifest import CHECKSUMS, MANIFEST
+from causeline.service.drift.job import DriftOptions, run_drift
+from causeline.service.drift.tally import Scorer, carried
+from causeline.service.files.checksum import checksum_text
+from causeline.service.files.predlog import PredictionLogWriter
+from fixtures.demo.generate import SHIFTS, generate
+
+LABEL = "went_warm_24h"
+
+
+def flagged(result, area: str, column: str) -> set[str]:  # type: ignore[no-untyped-def]
+    table = result.tables[area]
+    return set(table[(table["level"] != "ok") & table["decides"].astype(bool)][column])
+
+
+@pytest.fixture(scope="module")
+def window(tmp_path_factory: pytest.TempPathFactory):  # type: ignore[no-untyped-def]
+    folder = tmp_path_factory.mktemp("drift")
+
+    def write(seed: int, shift: str | None = None) -> Path:
+        path = folder / f"{seed}-{shift}.parquet"
+        if not path.exists():
+            generate(cases=80, seed=seed, shift=shift).to_parquet(path, index=False)
+        return path
+
+    return write
+
+
+def test_an_unchanged_fleet_is_ok(demo_bundle: Bundle, window) -> None:  # type: ignore[no-untyped-def]
+    result = run_drift(demo_bundle, window(31), None, DriftOptions(label=LABEL, replicates=50))
+    assert result.verdict.level == "ok", result.verdict.decided_by
+    assert result.summary["calibration"]["rows"] == 80 * 365
+
+
+@pytest.mark.parametrize("shift", sorted(SHIFTS))
+def test_a_planted_shift_is_flagged_on_what_it_touched_only(
+    demo_bundle: Bundle, window, shift: str  # type: ignore[no-untyped-def]
+) -> None:
+    result = run_drift(demo_bundle, window(31, shift), None, DriftOptions())
+    touched = SHIFTS[shift]
+    features = flagged(result, "features", "feature")
+    assert result.verdict.level in ("watch", "retrain")
+    assert features and features <= set(touched["features"]), features
+    assert flagged(result, "codes", "code") <= set(touched["codes"])
+
+
+def test_carried_codes_are_the_explanations_reasons(demo_bundle: Bundle, demo_table) -> None:  # type: ignore[no-untyped-def]
+    from causeline.service.explain.explainer import Explainer
+
+    rows = demo_table.head(400)
+    explanation = Explainer(demo_bundle).explain(rows)
+    scorer = Scorer.of(demo_bundle)
+    scored = scorer.score(explanation.features.values)
+    index = scorer.catalogue.index
+    for row, reasons in enumerate(explanation.reasons):
+        assert {index[r.code] for r in reasons} == set(scored.carried[row].nonzero()[0])
+    assert (scored.probability == explanation.probability).all()
+    assert carried(explanation.code_contributions, 4, 0.05).sum() == sum(
+        len(r) for r in explanation.reasons)
+
+
+def test_cli_writes_the_folder_and_exits_by_verdict(demo_bundle: Bundle, window,  # type: ignore[no-untyped-def]
+                                                    tmp_path: Path, capsys) -> None:
+    out = tmp_path / "drift"
+    status = main(["drift", "--bundle", str(demo_bundle.path), "--input",
+                   str(window(31, "heat")), "--out", str(out), "--quiet", "--label", LABEL])
+    summary = json.loads((out / "summary.json").read_text())
+    assert status == {"watch": 10, "retrain": 11}[summary["verdict"]]
+    for name in ("features", "codes", "scores", "checks", "calibration"):
+        assert len(pd.read_csv(out / f"{name}.csv"))
+    assert any(d["subject"] == "store_ambient_c" for d in summary["decided_by"])
+    assert "verdict:" in capsys.readouterr().out
+
+
+def test_a_bundle_without_a_reference_gets_one_line(demo_bundle: Bundle, window,  # type: ignore[no-untyped-def]
+                                                    tmp_path: Path, capsys) -> None:
+    old = tmp_path / "old"
+    shutil.copytree(demo_bundle.path, old)
+    raw = json.loads((old / MANIFEST).read_text())
+    del raw["reference"]
+    (old / MANIFEST).write_text(json.dumps(raw))
+    (old / "reference.json").unlink()
+    (old / CHECKSUMS).write_text(checksum_text(old, [MANIFEST, "model.txt", "MODEL_CARD.md"]))
+    status = main(["drift", "--bundle", str(old), "--input", str(window(31)),
+                   "--out", str(tmp_path / "o")])
+    err = capsys.readouterr().err
+    assert status == 2 and "keeps no drift reference" in err and len(err.splitlines()) == 1
+
+
+def test_the_prediction_log_with_a_window(demo_bundle: Bundle, demo_table, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    log = tmp_path / "log"
+    writer = PredictionLogWriter(log)
+    events = demo_table.head(300).drop(columns=[LABEL]).to_dict("records")
+    stamps = ["2026-01-01T10:00:00+00:00", "2026-01-02T10:00:00+00:00"]
+    for day, stamp in enumerate(stamps):
+        writer.append([{"logged_at": stamp, "model": demo_bundle.name, "version": "x", "id": str(i),
+                        "probability": 0.1, "decision": False, "reasons": [], "event": e}
+                       for i, e in enumerate(events[day * 150:(day + 1) * 150])])
+    writer.append([{"logged_at": stamps[0], "model": "another", "event": events[0]}])
+    writer.close()
+    with open(next(log.glob("segment-*.jsonl")), "a") as handle:
+        handle.write("not json\n")
+    result = run_drift(demo_bundle, log, tmp_path / "out",
+                       DriftOptions(since="2026-01-02", until="2026-01-03"))
+    window = result.summary["window"]
+    assert window["events"] == 150 and window["prediction_log"]
+    assert window["other_models"] == 1 and window["unreadable_log_lines"] == 1
+    assert (tmp_path / "out" / "summary.json").exists()
