@@ -129,8 +129,12 @@ def _parser() -> argparse.ArgumentParser:
     effect.add_argument("--weeks-after", type=int, default=6, help="weeks compared after it "
                         "(default 6)")
     effect.add_argument("--bootstrap", type=int, default=999, help="bootstrap samples of "
-                        "entities for the interval (default 999)")
+                        "entities (or clusters) for the interval (default 999)")
     effect.add_argument("--level", type=float, default=0.95, help="interval level (0.95)")
+    effect.add_argument("--cluster-by", metavar="COLUMN", help="a column of the attributes "
+                        "whose entities share shocks (a store, a line): the bootstrap resamples "
+                        "them together (default: the config's attributes.cluster_by, else each "
+                        "entity alone)")
     effect.add_argument("--min-treated", type=int, default=10, help="fewest treated (and "
                         "comparison) entities for a number (default 10)")
     effect.add_argument("--seed", type=int, default=0, help="bootstrap seed (default 0)")
@@ -348,7 +352,7 @@ def _effect(args: argparse.Namespace) -> int:
     options = EffectOptions(
         before=args.weeks_before, after=args.weeks_after, bootstrap=args.bootstrap,
         level=args.level, seed=args.seed, min_treated=args.min_treated,
-        min_comparison=args.min_treated)
+        min_comparison=args.min_treated, cluster_by=args.cluster_by)
     options.check()
     spec = load_config(args.config)
     bundle = load_bundle(args.bundle) if args.bundle is not None else None

@@ -13,9 +13,11 @@ did (Angrist & Pischke, *Mostly Harmless Econometrics*, 2009, ch. 5.2). The rate
 beside it are averaged with the same weights, so the effect equals the after-minus-before
 change of the treated minus that of the comparison as printed.
 
-The interval resamples whole entities with replacement (a cluster bootstrap; an entity's weeks
+The interval resamples whole clusters with replacement (a cluster bootstrap; an entity's weeks
 are correlated, and an entity can sit in several blocks, so rows are not independent: Cameron,
-Gelbach & Miller 2008, REStat 90(3)) and takes the percentiles of the re-estimated effects.
+Gelbach & Miller 2008, REStat 90(3)) and takes the percentiles of the re-estimated effects. A
+cluster is an entity unless ``clusters`` groups entities that share shocks (the cases of one
+store): then a store's entities are drawn, or left out, together.
 A placebo effect compares the later half of the ``before`` weeks with the earlier half the
 same way: far from zero, the two groups were already drifting apart before the action.
 """
@@ -59,15 +61,23 @@ class Rates:
 
 class StackedDiD:
     """Fit on a :class:`Stack`; ``rates_`` holds the estimate and interval, ``weekly_`` the
-    treated and comparison rates per week of the window (cohorts weighted as the effect)."""
+    treated and comparison rates per week of the window (cohorts weighted as the effect),
+    ``clusters_`` and ``treated_clusters_`` what the bootstrap resampled."""
 
     def __init__(self, bootstrap: int = 999, level: float = 0.95, seed: int = 0) -> None:
         self.bootstrap = bootstrap
         self.level = level
         self.seed = seed
 
-    def fit(self, stack: Stack) -> StackedDiD:
+    def fit(self, stack: Stack, clusters: np.ndarray | None = None) -> StackedDiD:
+        """``clusters``: per entity code, a whole-number label of the cluster the bootstrap
+        resamples it with (entities sharing a label are drawn together); none: each entity
+        alone. ``clusters_`` and ``treated_clusters_`` count the clusters in the stack and
+        those holding a treated entity."""
         parts = _parts(stack)
+        codes, n_clusters = _cluster_codes(stack, clusters)
+        self.clusters_ = n_clusters
+        self.treated_clusters_ = int(np.unique(codes[stack.entity[stack.treated]]).size)
         cohorts = stack.cohort_weeks.size
         groups = 2 * cohorts
         column = (2 * stack.cohort + stack.treated)[:, None] * _PARTS + np.arange(_PARTS)
@@ -80,8 +90,8 @@ class StackedDiD:
         draws = []
         for start in range(0, self.bootstrap, 200):
             size = min(200, self.bootstrap - start)
-            weights = rng.multinomial(stack.entities, np.full(stack.entities, 1 / stack.entities),
-                                      size=size).astype(np.float64)
+            drawn = rng.multinomial(n_clusters, np.full(n_clusters, 1 / n_clusters), size=size)
+            weights = np.concatenate([drawn, np.zeros((size, 1))], axis=1)[:, codes]
             draws.append(_did(_sums(matrix, weights, groups)))
         tails = (1 - self.level) / 2
         effect = np.concatenate([d["effect"] for d in draws]) if draws else np.empty(0)
@@ -98,6 +108,19 @@ class StackedDiD:
             placebo_high=placebo_high, replicates=int(np.isfinite(effect).sum()))
         self.weekly_ = _weekly(stack, point["weights"][0])
         return self
+
+
+def _cluster_codes(stack: Stack, clusters: np.ndarray | None) -> tuple[np.ndarray, int]:
+    """Per entity code, its cluster numbered 0..k-1 among the clusters with a row in the
+    stack (entities without one get k, a cluster never drawn), and k."""
+    own = np.arange(stack.entities) if clusters is None else \
+        np.asarray(clusters, dtype=np.int64)[:stack.entities]
+    present = np.zeros(stack.entities, dtype=bool)
+    present[stack.entity] = True
+    kept, codes = np.unique(own[present], return_inverse=True)
+    out = np.full(stack.entities + 1, kept.size, dtype=np.int64)
+    out[:-1][present] = codes
+    return out[:-1], int(kept.size)
 
 
 def _parts(stack: Stack) -> np.ndarray:

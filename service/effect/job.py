@@ -30,12 +30,19 @@ from causeline.service.effect.model import ModelCheck, ModelEstimate
 from causeline.service.effect.panel import EntityWeeks, entity_weeks
 from causeline.service.effect.trigger import Following, after_failures
 from causeline.service.errors import DataError
-from causeline.service.features.logs import RawPaths, TimelineInputs, read_inputs, timeline_of
+from causeline.service.features.logs import (
+    RawPaths,
+    TimelineInputs,
+    read_inputs,
+    require_columns,
+    timeline_of,
+)
 from causeline.service.files.spreadsheet import escape_frame
 from causeline.service.files.storage import atomic_directory
 from causeline.service.files.tables import write_table
 from causeline.service.progress import Progress, Silent
 from causeline.service.spec.dataset import DatasetSpec
+from causeline.service.spec.timeline import TimelineSpec
 
 EFFECTS = "effects.csv"
 WEEKS = "weeks.csv"
@@ -49,6 +56,10 @@ CAUTION = (
     "follow the codes and rules that apply locally, the equipment maker's instructions and "
     "licensed practice."
 )
+# Common practice, not a published threshold: cluster-bootstrap intervals from fewer clusters
+# than about 30-50 tend to be too narrow (Cameron, Gelbach & Miller 2008; with few treated
+# clusters, MacKinnon & Webb 2017, J. Applied Econometrics 32(2)).
+FEW_CLUSTERS = 30
 MEASURED = ("treated_before_per_1000", "treated_after_per_1000", "comparison_before_per_1000",
             "comparison_after_per_1000", "effect_per_1000", "effect_low", "effect_high",
             "relative_change", "placebo_per_1000", "placebo_low", "placebo_high")
@@ -56,9 +67,10 @@ MEASURED = ("treated_before_per_1000", "treated_after_per_1000", "comparison_bef
 
 @dataclass(frozen=True)
 class EffectOptions:
-    """The window in weeks, the bootstrap, and the limits below which no number is given
-    (``min_treated``, ``min_comparison``: the project's rule of thumb, a bootstrap over fewer
-    entities is unreliable), and what counts as an action following a failure."""
+    """The window in weeks, the bootstrap and what it resamples (``cluster_by``), the limits
+    below which no number is given (``min_treated``, ``min_comparison``: the project's rule of
+    thumb, a bootstrap over fewer entities is unreliable), and what counts as an action
+    following a failure."""
 
     before: int = 6
     after: int = 6
@@ -69,6 +81,9 @@ class EffectOptions:
     min_comparison: int = 10
     failure_days: float = 7.0
     failure_excess: float = 0.2
+    # A column of the attributes whose entities the bootstrap resamples together; none: the
+    # config's ``timeline.attributes.cluster_by``, else each entity alone.
+    cluster_by: str | None = None
 
     def check(self) -> None:
         if self.before < 1 or self.after < 1:
@@ -108,6 +123,7 @@ def study(
     if bundle is not None:
         progress("step 2/3: scoring the bundle's snapshots for the model's estimate")
         check = ModelCheck(bundle, inputs, panel)
+    unit, clusters = cluster_codes(timeline, inputs, panel, options.cluster_by)
     window = Window(options.before, options.after)
     rows, weekly, kinds = [], [], {}
     for link in links(spec):
@@ -116,8 +132,8 @@ def study(
             built = stack(panel, link.action_kind, window)
             following = after_failures(panel, panel.actions[link.action_kind],
                                        options.failure_days, options.failure_excess)
-            fit = (StackedDiD(options.bootstrap, options.level, options.seed).fit(built)
-                   if built.cohort_weeks.size else None)
+            fit = (StackedDiD(options.bootstrap, options.level, options.seed).fit(
+                built, clusters) if built.cohort_weeks.size else None)
             kinds[link.action_kind] = (built, following, fit)
             if fit is not None:
                 weekly.append(_weeks(link.action_kind, window, fit.weekly_))
@@ -125,11 +141,11 @@ def study(
         model = None
         if check is not None and link.fix_kind is not None:
             model = check.estimate(link.codes, built)
-        rows.append(_row(link, built, following, fit, model, options, bundle is not None))
+        rows.append(_row(link, built, following, fit, model, options, bundle is not None, unit))
     table = pd.DataFrame(rows)
     weeks = pd.concat(weekly, ignore_index=True) if weekly else pd.DataFrame(
         columns=["action_kind", "week", "treated_per_1000", "comparison_per_1000"])
-    return EffectResult(table, weeks, _summary(panel, table, options))
+    return EffectResult(table, weeks, _summary(panel, table, options, unit))
 
 
 def run_effect(
@@ -157,8 +173,37 @@ def run_effect(
     return result
 
 
+def cluster_codes(timeline: TimelineSpec, inputs: TimelineInputs, panel: EntityWeeks,
+                  column: str | None) -> tuple[str, np.ndarray | None]:
+    """What the bootstrap resamples: the name of the unit (``entity`` or an attributes
+    column) and per entity code its cluster label (none: each entity alone). The column is
+    ``column``, else the config's ``attributes.cluster_by``; naming the attributes' entity
+    column means each entity alone."""
+    attributes = timeline.attributes
+    column = column or (attributes.cluster_by if attributes is not None else None)
+    if column is None or (attributes is not None and column == attributes.entity):
+        return "entity", None
+    if inputs.attributes is None or attributes is None:
+        raise DataError(f"clustering by {column!r} needs the attributes table: give it "
+                        "(--attributes) and an attributes section in the config")
+    frame = inputs.attributes
+    if column not in frame.columns:
+        raise DataError(f"cluster by {column!r}: the attributes have no such column (they have "
+                        f"{', '.join(map(str, frame.columns))})")
+    require_columns(frame, "attributes", [attributes.entity])
+    values = pd.Series(frame[column].to_numpy(), index=frame[attributes.entity].astype("string"))
+    values = values[~values.index.duplicated()].reindex(panel.names)
+    missing = values.isna().to_numpy()
+    if missing.any():
+        raise DataError(
+            f"{int(missing.sum())} entities with readings have no {column!r} in the attributes "
+            f"(first: {panel.names[missing][0]!r}); give every entity a value, or cluster by "
+            "another column")
+    return column, pd.factorize(values.astype("string"))[0].astype(np.int64)
+
+
 def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
-         model: ModelEstimate | None, options: EffectOptions, with_bundle: bool
+         model: ModelEstimate | None, options: EffectOptions, with_bundle: bool, unit: str
          ) -> dict[str, Any]:
     warnings = _warnings(built, following, options)
     notes = []
@@ -169,6 +214,8 @@ def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
         "warning": "; ".join(warnings),
         "treated_entities": built.count(True), "treated_episodes": int(built.treated.sum()),
         "comparison_entities": built.count(False), "cohorts": int(built.cohort_weeks.size),
+        "cluster_by": unit, "clusters": 0 if fit is None else fit.clusters_,
+        "treated_clusters": 0 if fit is None else fit.treated_clusters_,
         "weeks_before": options.before, "weeks_after": options.after,
     }
     rates: Rates | None = fit.rates_ if fit is not None else None
@@ -190,6 +237,12 @@ def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
                 f"trends differed before the action (placebo {rates.placebo:+.1f} per 1,000, "
                 f"interval {rates.placebo_low:+.1f} to {rates.placebo_high:+.1f}): parallel "
                 "trends is in doubt, read the effect with care")
+        if fit is not None and fit.treated_clusters_ < FEW_CLUSTERS:
+            notes.append(
+                f"the interval resamples {fit.clusters_} clusters ({unit}), {fit.treated_clusters_}"
+                f" of them with treated entities; with fewer than about {FEW_CLUSTERS} treated "
+                "clusters a bootstrap interval tends to be too narrow (common practice), read it "
+                "with care")
         if math.isnan(rates.low):
             notes.append("too few bootstrap replicates had a usable block for an interval")
     if built.unmatched:
@@ -246,14 +299,16 @@ def _weeks(kind: str, window: Window, weekly: dict[str, np.ndarray]) -> pd.DataF
     })
 
 
-def _summary(panel: EntityWeeks, table: pd.DataFrame, options: EffectOptions
+def _summary(panel: EntityWeeks, table: pd.DataFrame, options: EffectOptions, unit: str
              ) -> dict[str, Any]:
     records = json.loads(table.drop(columns="file").to_json(orient="records"))
     observed = float(panel.days.sum())
     return {
         "generated_at": datetime.now(UTC).isoformat(timespec="seconds"),
         "method": "stacked difference-in-differences over entity-weeks, clean comparison "
-                  "entities per treatment week, cluster bootstrap over entities (docs/effect.md)",
+                  f"entities per treatment week, cluster bootstrap over {unit} "
+                  "(docs/effect.md)",
+        "resampled": unit,
         "options": asdict(options),
         "counts": {"entities": int(panel.names.size), "weeks": panel.weeks,
                    "entity_days": observed, "events": int(panel.events.sum()),

@@ -42,10 +42,12 @@ def write_report(path: Path, result: EffectResult, caution: str) -> None:
               else f"{counts['events_per_1000']:.1f}"),
              ("measured", f"{int((table['status'] == 'measured').sum())} of {len(table)}")]
     options = result.summary["options"]
+    resampled = result.summary["resampled"]
+    unit = "entities" if resampled == "entity" else f"entities grouped by {resampled}"
     write_page(path, "effect.html", title="Did the fix work?",
                subtitle=f"Weeks {counts['first_week']} to {counts['last_week']}; "
                         f"{options['before']} weeks before and {options['after']} after each "
                         f"action; {options['level']:.0%} intervals from "
-                        f"{options['bootstrap']} bootstrap samples of entities",
+                        f"{options['bootstrap']} bootstrap samples of {unit}",
                facts=facts, caution=caution, rows=rows, forest=forest, plots=plots,
                level=options["level"], before=options["before"], after=options["after"])

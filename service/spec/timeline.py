@@ -92,10 +92,14 @@ class ActionsInput(Strict):
 
 
 class AttributesInput(Strict):
-    """Static attributes, one row per entity, joined onto every snapshot."""
+    """Static attributes, one row per entity, joined onto every snapshot. ``cluster_by``
+    names a column of the attributes file (listed in ``columns`` or not) whose entities share
+    shocks, as the cases of one store share its air and its cleaning rota: the fix-effect
+    study's bootstrap resamples them together."""
 
     entity: str
     columns: tuple[str, ...] = Field(min_length=1)
+    cluster_by: str | None = None
 
 
 class SnapshotCadence(Strict):
