@@ -5,9 +5,10 @@ Planted truth comes from fixtures/demo/planted.py (the default plan: coil cleani
 hazard by 40 %, a firmware update does nothing, a leak repair follows failures). Per size and
 seed it prints nothing; per size, the coverage of each measured kind out of the seeds, how
 often the no-effect kind's interval holds zero, how often the repair got its warning, and the
-worst seed (largest miss, in interval half-widths).
+worst seed (largest miss, in interval half-widths); coverage and mean half-width both for the
+default bootstrap over cases and for one over whole stores (``cluster_by="store_id"``).
 
-    python bench/effect.py                 # timing and 20 seeds of two fleet sizes
+    python bench/effect.py                 # timing and 20 seeds of three fleet sizes
     python bench/effect.py --seeds 5 --no-timing
 """
 
@@ -61,44 +62,61 @@ def timing(folder: Path) -> None:
 
 
 def coverage(cases: int, days: int, seeds: range) -> None:
+    """Per fleet size: how often the intervals cover the planted truth, resampling cases
+    alone (the default) and whole stores (``--cluster-by store_id``)."""
     import numpy as np
 
     from causeline.service.effect.job import EffectOptions, study
     from causeline.service.features.logs import TimelineInputs
     from fixtures.demo.timeline import planted_timeline
 
-    options = EffectOptions()
+    units = {"entity": EffectOptions(), "store": EffectOptions(cluster_by="store_id")}
+    after = units["entity"].after
     spec = _spec()
-    covered = dict.fromkeys(MEASURED, 0)
-    zero, warned, worst, errors = 0, 0, (0.0, None, None), {k: [] for k in MEASURED}
+    covered = {(unit, kind): 0 for unit in units for kind in MEASURED}
+    width = {(unit, kind): [] for unit in units for kind in MEASURED}
+    zero, warned, worst = 0, 0, (0.0, None, None)
+    errors: dict[str, list[float]] = {k: [] for k in MEASURED}
     for seed in seeds:
         timeline, planted = planted_timeline(cases=cases, days=days, seed=seed)
         inputs = TimelineInputs(timeline.readings, timeline.excursions, timeline.maintenance,
                                 timeline.cases)
-        table = study(spec, inputs, options).table.set_index("action_kind")
-        for kind in MEASURED:
-            row = table.loc[kind]
-            truth = planted.truth(kind, options.after)
-            low, high, effect = row["effect_low"], row["effect_high"], row["effect_per_1000"]
-            covered[kind] += int(low <= truth <= high)
-            errors[kind].append(effect - truth)
-            miss = abs(effect - truth) / ((high - low) / 2)
-            if miss > worst[0]:
-                worst = (miss, seed, kind)
-        zero += int(table.loc["firmware_update", "effect_low"] <= 0
-                    <= table.loc["firmware_update", "effect_high"])
-        warned += int(table.loc["leak_repair", "warning"].startswith("follows failures")
-                      and np.isnan(table.loc["leak_repair", "effect_per_1000"]))
+        for unit, options in units.items():
+            table = study(spec, inputs, options).table.set_index("action_kind")
+            for kind in MEASURED:
+                row = table.loc[kind]
+                truth = planted.truth(kind, after)
+                low, high, effect = row["effect_low"], row["effect_high"], row["effect_per_1000"]
+                covered[unit, kind] += int(low <= truth <= high)
+                width[unit, kind].append((high - low) / 2)
+                if unit != "entity":
+                    continue
+                errors[kind].append(effect - truth)
+                miss = abs(effect - truth) / ((high - low) / 2)
+                if miss > worst[0]:
+                    worst = (miss, seed, kind)
+            if unit == "entity":
+                zero += int(table.loc["firmware_update", "effect_low"] <= 0
+                            <= table.loc["firmware_update", "effect_high"])
+                warned += int(table.loc["leak_repair", "warning"].startswith("follows failures")
+                              and np.isnan(table.loc["leak_repair", "effect_per_1000"]))
     n = len(seeds)
     tag = f"{cases}x{days}"
     for kind in MEASURED:
-        report(f"effect_coverage_{kind}_{tag}", f"{covered[kind]}/{n}")
+        for unit in units:
+            report(f"effect_coverage_{kind}_{tag}_by_{unit}", f"{covered[unit, kind]}/{n}")
+            report(f"effect_half_width_{kind}_{tag}_by_{unit}", float(np.mean(width[unit, kind])))
         report(f"effect_bias_{kind}_{tag}", float(np.mean(errors[kind])))
         report(f"effect_rmse_{kind}_{tag}", float(np.sqrt(np.mean(np.square(errors[kind])))))
     report(f"effect_no_effect_interval_holds_zero_{tag}", f"{zero}/{n}")
     report(f"effect_repair_after_failures_warned_{tag}", f"{warned}/{n}")
     report(f"effect_worst_seed_{tag}",
            f"seed {worst[1]} {worst[2]}: miss {worst[0]:.2f} interval half-widths")
+
+
+# Fleet sizes and their first seeds: fresh ones, never used in the tests (21-26) or while
+# building and checking the study (100-119, 5000-5019, 6000-6019, 7000-9059).
+SIZES = ((320, 365, 11000), (160, 300, 12000), (100, 365, 13000))
 
 
 def main() -> None:
@@ -109,9 +127,8 @@ def main() -> None:
     if not args.no_timing:
         with tempfile.TemporaryDirectory(prefix="causeline-effect-") as folder:
             timing(Path(folder))
-    # Fresh seeds, never used in the tests (21-26) or while building the study.
-    coverage(320, 365, range(5000, 5000 + args.seeds))
-    coverage(160, 300, range(6000, 6000 + args.seeds))
+    for cases, days, first in SIZES:
+        coverage(cases, days, range(first, first + args.seeds))
 
 
 if __name__ == "__main__":
