@@ -9,7 +9,11 @@ worst seed (largest miss, in interval half-widths); coverage and mean half-width
 default bootstrap over cases and for one over whole stores (``cluster_by="store_id"``).
 
     python bench/effect.py                 # timing and 20 seeds of three fleet sizes
-    python bench/effect.py --seeds 5 --no-timing
+    python bench/effect.py --seeds 5 --no-timing --no-conveyors
+
+The second domain, conveyor drives (fixtures/conveyors/generate.py, ``plant=``), has a jam
+guard that halves the jam hazard and a recalibration that does nothing: 20 seeds of 120
+drives over 240 days.
 """
 
 from __future__ import annotations
@@ -114,21 +118,64 @@ def coverage(cases: int, days: int, seeds: range) -> None:
            f"seed {worst[1]} {worst[2]}: miss {worst[0]:.2f} interval half-widths")
 
 
+def conveyor_coverage(drives: int, days: int, seeds: range) -> None:
+    """The second domain (fixtures/conveyors/generate.py): a jam guard that halves jams and a
+    recalibration that does nothing, on fresh seeds; coverage, bias and RMSE per kind."""
+    import numpy as np
+
+    from causeline.service.effect.job import EffectOptions, study
+    from causeline.service.features.logs import TimelineInputs
+    from causeline.service.spec.dataset import DatasetSpec
+    from fixtures.conveyors.generate import PLANTED_FIXES, generate, planted_config
+
+    spec = DatasetSpec.model_validate(planted_config())
+    options = EffectOptions()
+    found: dict[str, list[tuple[float, float, float, float]]] = {k: [] for k, _ in PLANTED_FIXES}
+    for seed in seeds:
+        timeline = generate(drives, days, seed, plant=PLANTED_FIXES)
+        assert timeline.planted is not None
+        inputs = TimelineInputs(timeline.readings, timeline.failures, timeline.maintenance,
+                                timeline.drives)
+        table = study(spec, inputs, options).table.set_index("action_kind")
+        for kind in found:
+            row = table.loc[kind]
+            found[kind].append((timeline.planted.truth(kind, options.after),
+                                row["effect_per_1000"], row["effect_low"], row["effect_high"]))
+    tag = f"{drives}x{days}"
+    for kind, rows in found.items():
+        truth, effect, low, high = (np.array(column) for column in zip(*rows, strict=True))
+        report(f"effect_conveyor_coverage_{kind}_{tag}",
+               f"{int(((low <= truth) & (truth <= high)).sum())}/{len(rows)}")
+        report(f"effect_conveyor_truth_{kind}_{tag}", f"{truth.min():.1f} to {truth.max():.1f}")
+        report(f"effect_conveyor_bias_{kind}_{tag}", float(np.mean(effect - truth)))
+        report(f"effect_conveyor_rmse_{kind}_{tag}",
+               float(np.sqrt(np.mean(np.square(effect - truth)))))
+        report(f"effect_conveyor_half_width_{kind}_{tag}", float(np.mean((high - low) / 2)))
+
+
 # Fleet sizes and their first seeds: fresh ones, never used in the tests (21-26) or while
-# building and checking the study (100-119, 5000-5019, 6000-6019, 7000-9059).
-SIZES = ((320, 365, 11000), (160, 300, 12000), (100, 365, 13000))
+# building and checking the study (100-119, 5000-5019, 6000-6019, 7000-9059, 11000-13019).
+SIZES = ((320, 365, 14000), (160, 300, 15000), (100, 365, 16000))
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seeds", type=int, default=20)
     parser.add_argument("--no-timing", action="store_true")
+    parser.add_argument("--no-conveyors", action="store_true",
+                        help="skip the second domain (about 10 s a seed)")
+    parser.add_argument("--first-seeds", type=lambda text: [int(x) for x in text.split(",")],
+                        help="the first seed of each size, comma-separated (default: "
+                        + ",".join(str(size[2]) for size in SIZES) + ")")
     args = parser.parse_args()
     if not args.no_timing:
         with tempfile.TemporaryDirectory(prefix="causeline-effect-") as folder:
             timing(Path(folder))
-    for cases, days, first in SIZES:
+    firsts = args.first_seeds or [size[2] for size in SIZES]
+    for (cases, days, _), first in zip(SIZES, firsts, strict=True):
         coverage(cases, days, range(first, first + args.seeds))
+    if not args.no_conveyors:
+        conveyor_coverage(120, 240, range(17000, 17000 + args.seeds))
 
 
 if __name__ == "__main__":

@@ -15,7 +15,8 @@ change of the treated minus that of the comparison as printed.
 
 The interval resamples whole clusters with replacement (a cluster bootstrap; an entity's weeks
 are correlated, and an entity can sit in several blocks, so rows are not independent: Cameron,
-Gelbach & Miller 2008, REStat 90(3)) and takes the percentiles of the re-estimated effects. A
+Gelbach & Miller 2008, REStat 90(3)) and takes the percentiles of the re-estimated effects,
+widened for the number of clusters holding treated entities (:func:`expanded_tail`). A
 cluster is an entity unless ``clusters`` groups entities that share shocks (the cases of one
 store): then a store's entities are drawn, or left out, together.
 A placebo effect compares the later half of the ``before`` weeks with the earlier half the
@@ -27,7 +28,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import sparse
+from scipy import sparse, stats
 
 from causeline.service.effect.design import Stack
 
@@ -93,7 +94,7 @@ class StackedDiD:
             drawn = rng.multinomial(n_clusters, np.full(n_clusters, 1 / n_clusters), size=size)
             weights = np.concatenate([drawn, np.zeros((size, 1))], axis=1)[:, codes]
             draws.append(_did(_sums(matrix, weights, groups)))
-        tails = (1 - self.level) / 2
+        tails = expanded_tail(self.level, self.treated_clusters_)
         effect = np.concatenate([d["effect"] for d in draws]) if draws else np.empty(0)
         placebo = np.concatenate([d["placebo"] for d in draws]) if draws else np.empty(0)
         low, high = _percentiles(effect, tails)
@@ -167,6 +168,20 @@ def _did(sums: np.ndarray) -> dict[str, np.ndarray]:
             "treated_before": mean(t_before), "treated_after": mean(t_after),
             "comparison_before": mean(c_before), "comparison_after": mean(c_after),
             "placebo": mean(placebo, placebo_weights), "weights": weights}
+
+
+def expanded_tail(level: float, clusters: int) -> float:
+    """The lower percentile (as a share) an interval at ``level`` reads off the bootstrap
+    replicates when ``clusters`` clusters hold the treated entities: the "expanded percentile"
+    interval (Hesterberg 2015, The American Statistician 69(4)), which corrects the plain
+    percentile interval's narrowness in small samples by reading it at the normal's
+    probability of sqrt(n / (n - 1)) times Student's t quantile with n - 1 degrees of freedom.
+    For 60 clusters and 95 % that is the 2.2nd percentile instead of the 2.5th."""
+    tail = (1 - level) / 2
+    if clusters < 2:
+        return tail
+    t = stats.t.ppf(tail, clusters - 1)
+    return float(stats.norm.cdf(np.sqrt(clusters / (clusters - 1)) * t))
 
 
 def _percentiles(values: np.ndarray, tails: float) -> tuple[float, float]:

@@ -20,10 +20,11 @@ import numpy as np
 import pandas as pd
 import pytest
 import yaml
+from scipy import stats
 
 from causeline.cli import main as causeline
 from causeline.service.effect.design import Stack, Window, stack
-from causeline.service.effect.estimate import StackedDiD
+from causeline.service.effect.estimate import StackedDiD, expanded_tail
 from causeline.service.effect.job import EffectOptions, study
 from causeline.service.effect.link import links
 from causeline.service.effect.panel import entity_weeks
@@ -276,9 +277,10 @@ def test_cluster_bootstrap_matches_the_cluster_robust_standard_error() -> None:
     treated = built.treated
     by_store = StackedDiD(bootstrap=1999, seed=1).fit(built, store)
     alone = StackedDiD(bootstrap=1999, seed=1).fit(built)
-    z = 1.959964  # the standard normal's 97.5 % point
     for fit, cluster in ((by_store, store), (alone, np.arange(store.size))):
         reference = _sandwich_se(change, treated, cluster)
+        # The interval is read at the expanded percentiles: so many standard errors wide.
+        z = -stats.norm.ppf(expanded_tail(0.95, fit.treated_clusters_))
         se = (fit.rates_.high - fit.rates_.low) / (2 * z)
         assert se == pytest.approx(reference, rel=0.15), (se, reference)
         assert fit.rates_.effect == pytest.approx(
@@ -321,3 +323,33 @@ def test_cluster_by_an_attribute(tmp_path: Path) -> None:
     with pytest.raises(DataError, match="1 entities with readings have no 'store_id'"):
         study(spec, TimelineInputs(partial.readings, partial.failures, partial.actions, cases),
               EffectOptions(bootstrap=99, cluster_by="store_id"))
+
+
+def test_expanded_percentile_tail() -> None:
+    # Hesterberg (2015, The American Statistician 69(4); the formula from memory): a 95 %
+    # interval from n = 10 is read at Phi(-sqrt(10 / 9) * t(0.975, 9)), where the printed
+    # t table gives t(0.975, 9) = 2.262; with many clusters it is the plain 2.5th percentile.
+    assert expanded_tail(0.95, 10) == pytest.approx(stats.norm.cdf(-np.sqrt(10 / 9) * 2.262),
+                                                    abs=2e-5)
+    assert expanded_tail(0.95, 100_000) == pytest.approx(0.025, abs=1e-4)
+    assert expanded_tail(0.95, 12) < expanded_tail(0.95, 60) < expanded_tail(0.95, 600) < 0.025
+
+
+def test_conveyor_planted_fixes_and_their_truth() -> None:
+    # The second domain's planted fixes (fixtures/conveyors/generate.py): a jam guard halves
+    # the jam hazard from its hour on, a recalibration changes nothing. The truth is the
+    # expected predicted failures with the factor minus without it, so a factor of 1 has
+    # exactly none and a guard on drives that jam has a negative one.
+    from fixtures.conveyors.generate import PLANTED_FIXES, PLANTED_SHARE, generate
+
+    timeline = generate(30, 70, seed=4, plant=PLANTED_FIXES)
+    planted = timeline.planted
+    assert planted is not None
+    logged = timeline.maintenance[timeline.maintenance["action"].isin(["jam_guard",
+                                                                       "sensor_recalibration"])]
+    assert (logged.groupby("action")["drive"].nunique() == round(PLANTED_SHARE * 30)).all()
+    assert planted.truth("sensor_recalibration", 4) == 0.0
+    assert planted.truth("jam_guard", 4) < 0
+    plain = generate(30, 70, seed=4)
+    assert plain.planted is None
+    assert not plain.maintenance["action"].isin(["jam_guard"]).any()
