@@ -50,26 +50,32 @@ JOB_CHANGES = {
 }
 
 
-def _demo_truth(frame: pd.DataFrame, changes: dict[str, object]) -> pd.DataFrame:
+def _redo(frame: pd.DataFrame, changes: dict[str, object], driver: str, column: str,
+          rule) -> pd.DataFrame:  # type: ignore[no-untyped-def]
+    """The frame with ``changes`` made and ``column`` re-derived by the generator's ``rule``
+    when ``driver`` changed (a cleaned coil lowers the discharge pressure; a shorter retention
+    frees scratch disk)."""
     out = frame.copy()
     for name, value in changes.items():
         out[name] = value
-    if "days_since_coil_clean" in changes:
-        out["discharge_pressure_kpa"] = demo._discharge_pressure(
-            out["days_since_coil_clean"].to_numpy(float), out["store_ambient_c"].to_numpy(float),
-            out["_truth_discharge_noise"].to_numpy(float))
+    if driver in changes:
+        out[column] = rule(out)
     return out
+
+
+def _demo_truth(frame: pd.DataFrame, changes: dict[str, object]) -> pd.DataFrame:
+    return _redo(frame, changes, "days_since_coil_clean", "discharge_pressure_kpa",
+                 lambda f: demo._discharge_pressure(
+                     f["days_since_coil_clean"].to_numpy(float),
+                     f["store_ambient_c"].to_numpy(float),
+                     f["_truth_discharge_noise"].to_numpy(float)))
 
 
 def _job_truth(frame: pd.DataFrame, changes: dict[str, object]) -> pd.DataFrame:
-    out = frame.copy()
-    for name, value in changes.items():
-        out[name] = value
-    if "scratch_retention_days" in changes:
-        out["scratch_disk_used_pct"] = jobs.disk_used_pct(
-            out["scratch_retention_days"].to_numpy(float), out["output_gb"].to_numpy(float),
-            out["_truth_disk_noise"].to_numpy(float))
-    return out
+    return _redo(frame, changes, "scratch_retention_days", "scratch_disk_used_pct",
+                 lambda f: jobs.disk_used_pct(
+                     f["scratch_retention_days"].to_numpy(float), f["output_gb"].to_numpy(float),
+                     f["_truth_disk_noise"].to_numpy(float)))
 
 
 def _check(bundle: Bundle, events: pd.DataFrame, planted: np.ndarray, feature_of: dict,
