@@ -314,12 +314,15 @@ def _tell_apart(rows: list[dict[str, Any]], found: list[Group]) -> None:
 
 
 def _common_action(finder: ActionFinder | None, tally: Tally, label: int) -> dict[str, Any]:
-    """The group's most common what-to-change action, over a uniform sample of its events
-    (the driver-value sample, smallest random keys first)."""
+    """The group's most common what-to-change action, over a sample of its events: the
+    driver-value sample, ordered by a hash of each row's values, so both engines examine the
+    same rows whenever the sample holds the whole group."""
     found = None
     if finder is not None:
-        order = np.argsort(tally.sample_keys[label], kind="stable")[:ACTION_SAMPLE]
-        found = common_action(finder, tally.sample_rows[label][order])
+        rows = tally.sample_rows[label]
+        hashed = pd.util.hash_pandas_object(pd.DataFrame(rows), index=False).to_numpy()
+        order = np.argsort(hashed, kind="stable")[:ACTION_SAMPLE]
+        found = common_action(finder, rows[order])
     if found is None:
         return {"action_most_common": "", "action_chosen_share": None,
                 "action_below_threshold_share": None, "action_events_examined": 0}
