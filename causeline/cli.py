@@ -257,11 +257,10 @@ def _explain(args: argparse.Namespace) -> int:
     if _use_dask(args):
         from causeline.service.dask.explain import explain_partitions
 
-        if args.what_to_change:
-            raise CauselineError("--what-to-change runs on the local engine only so far")
-
+        _changes(args, bundle)  # the same one-line refusal without change settings
         totals = explain_partitions(
-            bundle, args.input, args.out, args.top, args.all_contributions, _dask_settings(args)
+            bundle, args.input, args.out, args.top, args.all_contributions, _dask_settings(args),
+            args.what_to_change,
         )
     else:
         totals = explain_file(

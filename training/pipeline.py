@@ -34,6 +34,7 @@ from causeline.service.explain.fastshap import FastTreeExplainer
 from causeline.service.explain.score import calibrate
 from causeline.service.explain.treeshap import contributions
 from causeline.service.features.builder import FeatureBuilder, FeatureMatrix
+from causeline.service.features.follow import follower_slopes
 from causeline.service.files.checksum import checksum_text, sha256_file
 from causeline.service.files.storage import atomic_directory
 from causeline.service.files.tables import read_table
@@ -122,6 +123,8 @@ def fit_bundle(
     base_value = contributions(trees.booster, x[:1]).base_value
     stats = feature_stats(matrix, builder.categories)
     spec = config.dataset_spec()
+    for name, follows in follower_slopes(spec, builder.names, x).items():
+        stats[name] = stats[name].model_copy(update={"follows": follows})
     reference = build_reference(
         Scorer(trees.booster, spec, stats, calibration, config.explain), spec,
         builder.categories, x, split.test, decision.threshold, config.training.seed,

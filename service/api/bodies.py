@@ -81,6 +81,10 @@ class ActionOut(BaseModel):
     probability_after: float
     reaches_threshold: bool
     reason_codes_after: list[str]
+    moved_with: list[ChangeOut] = Field(
+        default_factory=list, description="observable features that share a reason code with a "
+        "changed one, moved with it along the training data's least-squares line (an "
+        "association, not a physical law)")
 
 
 class EventResult(BaseModel):

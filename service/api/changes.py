@@ -57,7 +57,7 @@ def _plain(record: dict[str, Any] | None) -> dict[str, Any] | None:
     """Numbers as Python floats (the JSON writer takes no numpy scalars)."""
     if record is None:
         return None
-    for change in record["changes"]:
+    for change in record["changes"] + record["moved_with"]:
         for side in ("from", "to"):
             if isinstance(change[side], np.floating):
                 change[side] = float(change[side])

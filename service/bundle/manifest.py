@@ -26,6 +26,9 @@ class FeatureStats(Strict):
     typical: float | str | None = None
     missing_share: float = 0.0
     categories: tuple[str, ...] | None = None
+    # A controllable feature's observable followers and their slopes (features/follow.py);
+    # None in bundles trained before they were kept.
+    follows: dict[str, float] | None = None
 
 
 class Calibration(Strict):

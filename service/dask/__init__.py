@@ -2,5 +2,5 @@
 subpackage that imports ``dask`` or ``distributed``; ``rootcause`` holds the work per slice that
 both engines run.
 
-May import: errors, files, spec, features, bundle, explain, rootcause.
+May import: errors, files, spec, features, bundle, explain, actions, rootcause.
 """

@@ -9,6 +9,7 @@ rendered as by the local engine (the same
 
 from __future__ import annotations
 
+import functools
 import gzip
 from dataclasses import dataclass
 from pathlib import Path
@@ -19,6 +20,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from causeline.service.actions.search import ActionFinder, Actions
 from causeline.service.bundle.load import Bundle
 from causeline.service.dask.cluster import (
     DaskSettings,
@@ -46,16 +48,25 @@ class _Explained:
     span: int
 
 
+@functools.cache
+def _worker_finder(bundle_path: str, max_changes: int) -> ActionFinder:
+    """The what-to-change search for the worker's bundle, made once per worker process."""
+    return ActionFinder(worker_explainer(bundle_path).bundle, max_changes)
+
+
 def _explain_part(
-    block: Block, bundle_path: str, top: int | None, all_contributions: bool, kind: str
+    block: Block, bundle_path: str, top: int | None, all_contributions: bool, kind: str,
+    max_changes: int | None = None,
 ) -> _Explained:
     """On a worker: one partition's output and its counts; its rejects are passed on."""
     explainer = worker_explainer(bundle_path, top)
     explanation = explainer.explain(block.table)  # ids already text (read_partitions)
     totals = ExplainTotals()
     totals.add(explanation)
-    return _Explained(rendered(explanation, explainer, kind, all_contributions), totals,
-                      block.rejects, block.span)
+    changes = None if not max_changes else Actions.find(
+        explainer, explanation, max_changes, _worker_finder(bundle_path, max_changes))
+    return _Explained(rendered(explanation, explainer, kind, all_contributions, changes),
+                      totals, block.rejects, block.span)
 
 
 def explain_partitions(
@@ -65,6 +76,7 @@ def explain_partitions(
     top: int | None = None,
     all_contributions: bool = False,
     settings: DaskSettings | None = None,
+    max_changes: int | None = None,
 ) -> ExplainTotals:
     """``causeline explain --engine dask``: the same output file, written partition by partition.
 
@@ -83,7 +95,8 @@ def explain_partitions(
         writer = _PartWriter(temporary, kind, out.name.lower().endswith(".gz"))
         try:
             tasks = [
-                dask.delayed(_explain_part)(part, bundle_path, top, all_contributions, kind)
+                dask.delayed(_explain_part)(part, bundle_path, top, all_contributions, kind,
+                                            max_changes)
                 for part in source.parts
             ]
 

@@ -29,6 +29,7 @@ import pandas as pd
 from causeline.service.bundle.load import Bundle
 from causeline.service.explain.reasons import ReasonCatalogue, format_value
 from causeline.service.explain.score import probability
+from causeline.service.features.follow import slope
 from causeline.service.files.tables import to_numbers
 
 How = Literal["cap", "floor", "set"]
@@ -134,18 +135,11 @@ def _follow(
                 shift = _category_shift(reference[:, fixed], reference[:, column],
                                         before[:, fixed], after[:, fixed])
             else:
-                slope = _slope(reference[:, fixed], reference[:, column])
-                shift = slope * np.nan_to_num(after[:, fixed] - before[:, fixed])
+                shift = slope(reference[:, fixed], reference[:, column]) * np.nan_to_num(
+                    after[:, fixed] - before[:, fixed])
             present = reference[:, column][~np.isnan(reference[:, column])]
             if present.size:
                 after[:, column] = np.clip(before[:, column] + shift, present.min(), present.max())
-
-
-def _slope(x: np.ndarray, y: np.ndarray) -> float:
-    both = ~(np.isnan(x) | np.isnan(y))
-    if both.sum() < 3 or np.var(x[both]) == 0:
-        return 0.0
-    return float(np.cov(x[both], y[both], bias=True)[0, 1] / np.var(x[both]))
 
 
 def _category_shift(

@@ -21,6 +21,7 @@ from typing import Any, Protocol
 import numpy as np
 import pandas as pd
 
+from causeline.service.actions.search import ActionFinder, common_action
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import DataError
 from causeline.service.explain.reasons import ReasonCatalogue
@@ -65,12 +66,18 @@ REJECTS = "rejects.csv"
 
 
 CAUTION = (
-    "Model estimates, not a diagnosis. Groups, reason codes and events avoidable come from a "
-    "statistical model of past data; they show associations and may be wrong. Where safety is "
-    "at stake, follow the codes and rules that apply locally, the equipment maker's "
-    "instructions and licensed practice, and have a qualified person inspect before acting."
+    "Model estimates, not a diagnosis. Groups, reason codes, events avoidable and the most "
+    "common changes come from a statistical model of past data; they show associations and may "
+    "be wrong. A proposed change is for qualified staff to review, never an instruction: stay "
+    "within the equipment maker's limits, and keep settings that are not safe out of the "
+    "config's change ranges. Where safety is at stake, follow the codes and rules that apply "
+    "locally, the equipment maker's instructions and licensed practice, and have a qualified "
+    "person inspect before acting."
 )
 STEPS = 6
+# Group members the what-to-change search examines for the group's most common action: the
+# share it brings below the threshold is then known to about +-5 points (binomial, 95 %).
+ACTION_SAMPLE = 300
 
 
 @dataclass(frozen=True)
@@ -186,6 +193,7 @@ def finish_rootcause(
     for group in found:
         targets[group.label] = fix_targets(catalogue, group.leading)
     avoidable = slices.avoidable(targets)
+    finder = ActionFinder(bundle) if any(f.change for f in bundle.spec.features) else None
     rows = []
     for position, group in enumerate(found):
         row = {
@@ -196,6 +204,7 @@ def finish_rootcause(
         }
         row.update(group_row(catalogue, group, tally, targets[group.label],
                              avoidable[group.label]))
+        row.update(_common_action(finder, tally, group.label))
         rows.append(row)
     _tell_apart(rows, found)
     groups = _group_frame(rows, tally.events - tally.grouped, tally.events)
@@ -304,6 +313,25 @@ def _tell_apart(rows: list[dict[str, Any]], found: list[Group]) -> None:
         rows[position]["label"] += f" (more {label_for([code])})"
 
 
+def _common_action(finder: ActionFinder | None, tally: Tally, label: int) -> dict[str, Any]:
+    """The group's most common what-to-change action, over a sample of its events: the
+    driver-value sample, ordered by a hash of each row's values, so both engines examine the
+    same rows whenever the sample holds the whole group."""
+    found = None
+    if finder is not None:
+        rows = tally.sample_rows[label]
+        hashed = pd.util.hash_pandas_object(pd.DataFrame(rows), index=False).to_numpy()
+        order = np.argsort(hashed, kind="stable")[:ACTION_SAMPLE]
+        found = common_action(finder, rows[order])
+    if found is None:
+        return {"action_most_common": "", "action_chosen_share": None,
+                "action_below_threshold_share": None, "action_events_examined": 0}
+    return {"action_most_common": found.description,
+            "action_chosen_share": round(found.chosen_share, 3),
+            "action_below_threshold_share": round(found.below_share, 3),
+            "action_events_examined": found.examined}
+
+
 def _group_frame(rows: list[dict[str, Any]], ungrouped: int, events: int) -> pd.DataFrame:
     frame = pd.DataFrame(rows, columns=GROUP_COLUMNS)
     frame = frame.sort_values("events", ascending=False, kind="stable")
@@ -320,6 +348,7 @@ def _group_frame(rows: list[dict[str, Any]], ungrouped: int, events: int) -> pd.
     frame = tail if frame.empty else pd.concat([frame, tail], ignore_index=True)
     for column in ("share", "previous_share"):
         frame[column] = frame[column].astype(float).round(4)
+    frame["action_events_examined"] = frame["action_events_examined"].astype("Int64")
     for column in [c for c in GROUP_COLUMNS if c.endswith("_contribution")]:
         frame[column] = frame[column].astype(float).round(3)
     # A count of events, estimated: tenths are as far as it can be read.
@@ -333,8 +362,9 @@ GROUP_COLUMNS = [
     "code_1", "code_1_mean_contribution", "code_2", "code_2_mean_contribution",
     "code_3", "code_3_mean_contribution",
     "driver_values", "drivers", "fix_code", "fix_kind", "fix_action", "fix_simulated",
-    "events_avoidable_model_estimate", "risk_reduction_model_estimate", "first_event",
-    "last_event", "top_entities", "example_event_ids",
+    "events_avoidable_model_estimate", "risk_reduction_model_estimate",
+    "action_most_common", "action_chosen_share", "action_below_threshold_share",
+    "action_events_examined", "first_event", "last_event", "top_entities", "example_event_ids",
 ]
 
 

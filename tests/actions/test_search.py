@@ -5,7 +5,9 @@ every pair of changeable features (the whole allowed domain, a plain exhaustive 
 here without thresholds or intervals) and keeps the cheapest combination that brings the
 model's calibrated probability below the threshold. The interval search must find the same
 lowest cost, and its action must respect ranges, directions and steps and leave observable
-features alone.
+features alone. With a reason code over ``a`` and the observable ``c`` (which the data makes
+follow ``a``), ``c`` moves with ``a`` along the least-squares line (numpy's polyfit is the
+reference for the slope); the brute force moves it the same way, and the costs must still agree.
 """
 
 from __future__ import annotations
@@ -30,8 +32,11 @@ from causeline.training.pipeline import train
 DOMAIN = range(0, 21)
 
 
-def _config(cost: tuple[float, float], per_unit: tuple[float, float], direction: str) -> dict:
-    return {
+def _config(cost: tuple[float, float], per_unit: tuple[float, float], direction: str,
+            follow: bool = False) -> dict:
+    codes = [{"code": "A_AND_C", "features": ["a", "c"], "direction": "high",
+              "text": "a {a}, c {c}"}] if follow else []
+    return {"reason_codes": codes,
         "name": "toy", "target": "y", "id": "id",
         "features": [
             {"name": "a", "role": "controllable",
@@ -53,6 +58,8 @@ def _bundle(tmp: Path, seed: int, config: dict) -> Path:
     table = pd.DataFrame({"id": [f"r{i}" for i in range(n)],
                           "a": rng.integers(0, 21, n), "b": rng.integers(0, 21, n),
                           "c": rng.integers(0, 21, n)})
+    if config["reason_codes"]:  # c follows a
+        table["c"] = np.clip(table["a"] + rng.integers(-3, 4, n), 0, 20)
     risk = 0.25 * (table["a"] - 12) + 0.2 * (table["b"] - 10) + 0.1 * (table["c"] - 10)
     table["y"] = (rng.uniform(size=n) < 1 / (1 + np.exp(-risk))).astype(int)
     (tmp / "config.yaml").write_text(yaml.safe_dump(config), "utf-8")
@@ -61,9 +68,10 @@ def _bundle(tmp: Path, seed: int, config: dict) -> Path:
     return tmp / "bundle"
 
 
-def _brute(finder: ActionFinder, row: np.ndarray, threshold: float, config: dict
-           ) -> float | None:
-    """The lowest cost over every integer setting of one or both features."""
+def _brute(finder: ActionFinder, row: np.ndarray, threshold: float, config: dict,
+           slope: float = 0.0) -> float | None:
+    """The lowest cost over every integer setting of one or both features (``c`` moved with
+    ``a`` by ``slope`` within its training range 0..20)."""
     changes = {f["name"]: f["change"] for f in config["features"] if "change" in f}
     best = None
     for names in (["a"], ["b"], ["a", "b"]):
@@ -80,23 +88,32 @@ def _brute(finder: ActionFinder, row: np.ndarray, threshold: float, config: dict
                     allowed = False
                 moved[i] = value
                 cost += change["cost"] + change["cost_per_unit"] * abs(value - row[i])
+                if name == "a" and slope:
+                    c = finder.names.index("c")
+                    moved[c] = np.clip(row[c] + slope * (value - row[i]), 0, 20)
             if allowed and finder.probability(moved[None, :])[0] < threshold:
                 best = cost if best is None else min(best, cost)
     return best
 
 
-@settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.too_slow,
+@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow,
                                                                   HealthCheck.function_scoped_fixture])
 @given(seed=st.integers(0, 10_000),
        cost=st.tuples(st.sampled_from([0.0, 1.0, 5.0]), st.sampled_from([0.0, 2.0])),
        per_unit=st.tuples(st.sampled_from([0.0, 0.5, 3.0]), st.sampled_from([0.1, 1.0])),
-       direction=st.sampled_from(["both", "decrease"]))
+       direction=st.sampled_from(["both", "decrease"]), follow=st.booleans())
 def test_the_interval_search_finds_the_brute_force_optimum(  # type: ignore[no-untyped-def]
-    tmp_path_factory, seed, cost, per_unit, direction
+    tmp_path_factory, seed, cost, per_unit, direction, follow
 ) -> None:
-    config = _config(cost, per_unit, direction)
-    bundle = load_bundle(_bundle(tmp_path_factory.mktemp("toy"), seed, config))
+    config = _config(cost, per_unit, direction, follow)
+    folder = tmp_path_factory.mktemp("toy")
+    bundle = load_bundle(_bundle(folder, seed, config))
     finder = ActionFinder(bundle, max_changes=2)
+    slope = 0.0
+    if follow:
+        data = pd.read_csv(folder / "data.csv")
+        slope = float(np.polyfit(data["a"], data["c"], 1)[0])
+        assert bundle.manifest.stats["a"].follows == {"c": pytest.approx(slope)}
     threshold = bundle.manifest.decision.threshold
     rng = np.random.default_rng(seed + 1)
     rows = rng.integers(0, 21, size=(12, 3)).astype(float)
@@ -107,7 +124,7 @@ def test_the_interval_search_finds_the_brute_force_optimum(  # type: ignore[no-u
             assert action.changes == [] and action.reached
             continue
         checked += 1
-        expected = _brute(finder, row, threshold, config)
+        expected = _brute(finder, row, threshold, config, slope)
         if expected is None:
             assert not action.reached
             continue

@@ -391,3 +391,23 @@ def test_a_worker_out_of_memory_is_one_line_with_what_to_change() -> None:
     message = str(caught.value)
     assert "\n" not in message and "out of memory" in message
     assert "--partition-mb, now 32" in message and "--worker-memory, now 300MiB" in message
+
+
+def test_what_to_change_is_the_same_on_both_engines(  # type: ignore[no-untyped-def]
+    demo_bundle, demo_table, cluster, tmp_path
+) -> None:
+    # The search itself is checked against brute force (tests/actions); here the Dask engine
+    # must give each event the same action as the local one.
+    table = demo_table.iloc[:EXPLAIN_ROWS]
+    table.to_parquet(tmp_path / "events.parquet", index=False)
+    outputs = {}
+    for engine in ("local", "dask"):
+        out = tmp_path / f"{engine}.jsonl"
+        extra = ["--scheduler", cluster.scheduler_address, "--partition-mb", "0.2"] \
+            if engine == "dask" else []
+        assert main(["explain", "--bundle", str(demo_bundle.path), "--input",
+                     str(tmp_path / "events.parquet"), "--out", str(out), "--what-to-change",
+                     "--engine", engine, *extra]) == 0
+        outputs[engine] = out.read_text("utf-8").splitlines()
+    assert outputs["dask"] == outputs["local"]
+    assert any('"changes": [{' in line for line in outputs["local"])

@@ -94,10 +94,12 @@ def test_real_server_scores_refuses_and_swaps_bundles(
     assert [r["id"] for r in body["results"]] == [e["snapshot_id"] for e in events]
     old = body["model"]["version"]
 
-    broken = {**events[0], "month": "June", "case_type": None, "extra": 1}
+    broken = {k: v for k, v in events[0].items() if k != "setpoint_c"} | {
+        "month": "June", "case_type": None, "setpont_c": 1, "extra": 1}
     refused = client.post("/v1/score", json={"events": [broken]}, headers=key)
     assert refused.status_code == 422
-    assert {e["field"] for e in openapi(refused, "/v1/score")["errors"]} == {"month", "extra"}
+    assert {e["field"] for e in openapi(refused, "/v1/score")["errors"]} == {
+        "month", "setpoint_c", "setpont_c"}  # "extra" alone would be scored past and named
     malformed = client.post("/v1/score", content=b"{", headers={**key,
                             "content-type": "application/json"})
     assert malformed.status_code == 400 and "Traceback" not in malformed.text

@@ -263,3 +263,27 @@ def test_repeated_event_ids_in_a_prediction_log_count_once(bundle, fleet, tmp_pa
     report = (tmp_path / "b" / "report.html").read_text("utf-8")
     assert f"<b>{2 * len(events):,}</b>repeated log entries dropped" in report
     assert "repeated log entries dropped" not in (tmp_path / "a" / "report.html").read_text()
+
+
+def test_each_group_names_its_most_common_change(demo_parquet, bundle, tmp_path) -> None:  # type: ignore[no-untyped-def]
+    # Outside truth: the demo generator's planted causes. A group led by a controllable cause
+    # (coil, firmware, defrost) gets that cause's own feature as its most common change, and
+    # the change brings most of its flagged events below the threshold; a group led by an
+    # observable cause (a leak, door traffic) has no change that does.
+    from tests.conftest import DEMO_CAUSE_CODES
+
+    run_rootcause(bundle, demo_parquet, tmp_path / "out", RootCauseOptions())
+    groups = pd.read_csv(tmp_path / "out" / GROUPS).set_index("code_1")
+    feature = {"dirty_coil": "days_since_coil_clean", "firmware_fault": "controller_firmware",
+               "long_defrost": "defrost_interval_h"}
+    for cause, code in DEMO_CAUSE_CODES.items():
+        row = groups.loc[code]
+        row = row.iloc[0] if isinstance(row, pd.DataFrame) else row
+        assert row["action_events_examined"] >= 20, (code, row["action_events_examined"])
+        if cause in feature:
+            assert str(row["action_most_common"]).startswith(feature[cause] + " -> "), code
+            assert row["action_below_threshold_share"] >= 0.8, (code, row.to_dict())
+        else:
+            assert row["action_below_threshold_share"] < 0.2, (code, row.to_dict())
+    html = (tmp_path / "out" / "report.html").read_text("utf-8")
+    assert "Most common change: days_since_coil_clean -&gt; 0" in html
