@@ -857,14 +857,18 @@ def test_request_in_flight_finishes_on_the_bundle_it_started_with(
 
     model.explainer.explain = slow
     answer: list[httpx.Response] = []
+    # More events than are explained on the event loop itself (INLINE_ROWS), so the slow
+    # explanation runs on a thread and the loop stays free to take the reload meanwhile.
+    many = (events * (api_scoring.INLINE_ROWS + 1))[:api_scoring.INLINE_ROWS + 1]
     worker = threading.Thread(
-        target=lambda: answer.append(client.post("/v1/score", json={"events": events[:1]}))
+        target=lambda: answer.append(client.post("/v1/score", json={"events": many}))
     )
     worker.start()
     assert started.wait(60)
     shutil.rmtree(live)
     rewrite_bundle(demo_bundle_path, live, version="3.0-test")
     assert client.post("/v1/admin/reload").status_code == 200
+    assert not release.is_set()  # the reload was taken while the request was in flight
     release.set()
     worker.join(60)
     assert answer[0].json()["model"]["version"] == model.version != "3.0-test"
