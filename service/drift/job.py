@@ -23,6 +23,7 @@ from causeline.service.bundle.load import Bundle
 from causeline.service.bundle.reference import Reference, load_reference
 from causeline.service.drift import checks
 from causeline.service.drift.intake import chunks, open_source
+from causeline.service.drift.page import CAUTION, write_report
 from causeline.service.drift.tally import CodeTally, FeatureTally, Scorer
 from causeline.service.errors import DataError
 from causeline.service.files.spreadsheet import escape_frame
@@ -123,7 +124,8 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     summary["window"]["entities"] = len(entities) or None
     result = DriftResult(decided, summary, tables)
     if out is not None:
-        _write(out, result)
+        caution = CAUTION + (f" {spec.caution}" if spec.caution else "")
+        _write(out, result, caution)
         result.folder = Path(out)
     return result
 
@@ -197,10 +199,11 @@ def _finite(value: Any) -> Any:
     return value
 
 
-def _write(out: Path, result: DriftResult) -> None:
+def _write(out: Path, result: DriftResult, caution: str) -> None:
     with atomic_directory(Path(out)) as staging:
         for name, table in result.tables.items():
             write_table(escape_frame(table), staging / f"{name}.csv")
         (staging / "summary.json").write_text(
             json.dumps(result.summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n",
             "utf-8")
+        write_report(staging / "report.html", result.summary, result.tables, caution)

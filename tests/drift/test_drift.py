@@ -125,3 +125,28 @@ def test_the_prediction_log_with_a_window(demo_bundle: Bundle, demo_table, tmp_p
     assert window["events"] == 150 and window["prediction_log"]
     assert window["other_models"] == 1 and window["unreadable_log_lines"] == 1
     assert (tmp_path / "out" / "summary.json").exists()
+
+
+def test_the_page_is_one_offline_file_that_escapes_and_shows_the_verdict(  # type: ignore[no-untyped-def]
+    demo_bundle: Bundle, window, tmp_path: Path
+) -> None:
+    # A category value is whatever the logs hold: markup in it must reach the page as text.
+    nasty = '<script>alert("x")</script>'
+    frame = pd.read_parquet(window(31, "heat"))
+    frame.loc[:599, "controller_firmware"] = nasty  # 2 % of the rows
+    data = tmp_path / "window.parquet"
+    frame.to_parquet(data, index=False)
+    result = run_drift(demo_bundle, data, tmp_path / "out", DriftOptions(label=LABEL,
+                                                                        replicates=20))
+    page = (tmp_path / "out" / "report.html").read_text("utf-8")
+    assert "controller_firmware" in {d["subject"] for d in result.verdict.decided_by}
+    lowered = page.lower()
+    for fetched in ("<script", " src=", "<link", "@import", "url("):
+        assert fetched not in lowered, fetched
+    assert "&lt;script&gt;alert(&#34;x&#34;)&lt;/script&gt;" in page
+    verdict = result.verdict.level
+    assert f'<span class="badge {verdict}" style="font-size:16px' in page
+    for decided in result.verdict.decided_by:
+        assert str(decided["subject"]) in page
+    assert page.count("<svg") >= 6  # PSI, outside, codes, scores, calibration curve and deciles
+    assert "licensed practice" in page and "FDA Food Code" in page
