@@ -37,7 +37,7 @@ from causeline.service.drift.stats import (
     quantile_bins,
     share_p_value,
 )
-from causeline.service.drift.tally import CodeTally, FeatureTally
+from causeline.service.drift.tally import CodeTally, FeatureTally, ScoreTally
 
 LEVELS = ("ok", "watch", "retrain")
 ALPHA = 0.05
@@ -159,8 +159,8 @@ def code_findings(tally: CodeTally, part: PartReference, code_ids: Sequence[str]
     return out
 
 
-def score_findings(tally: CodeTally, part: PartReference, units: Units) -> list[Finding]:
-    shares = tally.score_bins / max(tally.rows, 1)
+def score_findings(tally: ScoreTally, part: PartReference, units: Units) -> list[Finding]:
+    shares = tally.shares()
     value = psi(np.asarray(part.score_shares), shares)
     above = tally.flagged / max(tally.rows, 1)
     return [

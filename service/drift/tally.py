@@ -2,8 +2,9 @@
 
 A :class:`Scorer` turns a feature matrix into calibrated probabilities, per-code contributions
 and the codes each event carries (the same ranking as the explanations: the ``top_k`` largest
-above ``min_contribution``). :class:`FeatureTally` and :class:`CodeTally` add chunks up; the
-reference stored at training time and the window checked later are counted by the same code.
+above ``min_contribution``). :class:`FeatureTally`, :class:`ScoreTally` and :class:`CodeTally` add
+chunks up; the reference stored at training time and the window checked later are counted by
+the same code. :class:`CodeSample` keeps a seeded uniform sample of a window for the codes.
 """
 
 from __future__ import annotations
@@ -39,6 +40,7 @@ class Scorer:
 
     def __init__(self, booster: lgb.Booster, spec: DatasetSpec, stats: Mapping[str, FeatureStats],
                  calibration: Calibration, settings: ExplainSettings) -> None:
+        self.booster = booster
         self.engine = FastTreeExplainer(booster)
         self.catalogue = ReasonCatalogue(spec, stats)
         self.calibration = calibration
@@ -53,6 +55,11 @@ class Scorer:
     @property
     def code_ids(self) -> list[str]:
         return self.catalogue.code_ids
+
+    def probability(self, values: np.ndarray) -> np.ndarray:
+        """Calibrated probabilities alone: the trees' raw output, no explanation (cheap)."""
+        raw = self.booster.predict(values, raw_score=True)
+        return calibrate(self.calibration, np.asarray(raw, dtype=np.float64))
 
     def score(self, values: np.ndarray) -> Scored:
         contributions = self.engine.contributions(values)
@@ -73,11 +80,35 @@ def carried(codes: np.ndarray, top_k: int, min_contribution: float) -> np.ndarra
 
 
 @dataclass
+class ScoreTally:
+    """Sums over events of the calibrated probability: rows, flagged, and counts per reference
+    decile of the score. Cheap, so every event of a window is counted."""
+
+    score_cuts: np.ndarray
+    threshold: float
+    rows: int = 0
+    flagged: int = 0
+    probability: float = 0.0
+    bins: np.ndarray = field(init=False)
+
+    def __post_init__(self) -> None:
+        self.bins = np.zeros(self.score_cuts.size + 1, dtype=np.int64)
+
+    def add(self, probability: np.ndarray) -> None:
+        self.rows += probability.size
+        self.flagged += int((probability >= self.threshold).sum())
+        self.bins += bin_counts(probability, self.score_cuts)
+        self.probability += float(probability.sum())
+
+    def shares(self) -> np.ndarray:
+        return self.bins / max(self.rows, 1)
+
+
+@dataclass
 class CodeTally:
-    """Sums over events of each code's presence and contribution, and of the scores."""
+    """Sums over explained events of each code's presence and contribution."""
 
     codes: int
-    score_cuts: np.ndarray
     threshold: float
     rows: int = 0
     flagged: int = 0
@@ -85,15 +116,12 @@ class CodeTally:
     carried_flagged: np.ndarray = field(init=False)
     total: np.ndarray = field(init=False)
     squares: np.ndarray = field(init=False)
-    score_bins: np.ndarray = field(init=False)
-    probability: float = 0.0
 
     def __post_init__(self) -> None:
         self.carried = np.zeros(self.codes, dtype=np.int64)
         self.carried_flagged = np.zeros(self.codes, dtype=np.int64)
         self.total = np.zeros(self.codes)
         self.squares = np.zeros(self.codes)
-        self.score_bins = np.zeros(self.score_cuts.size + 1, dtype=np.int64)
 
     def add(self, scored: Scored) -> None:
         flagged = scored.probability >= self.threshold
@@ -103,8 +131,6 @@ class CodeTally:
         self.carried_flagged += scored.carried[flagged].sum(axis=0)
         self.total += scored.codes.sum(axis=0)
         self.squares += np.square(scored.codes).sum(axis=0)
-        self.score_bins += bin_counts(scored.probability, self.score_cuts)
-        self.probability += float(scored.probability.sum())
 
     def share(self) -> np.ndarray:
         return self.carried / max(self.rows, 1)
@@ -119,21 +145,56 @@ class CodeTally:
         n = max(self.rows, 1)
         return np.sqrt(np.maximum(self.squares / n - np.square(self.total / n), 0.0))
 
-    def part(self, code_ids: Sequence[str]) -> PartReference:
-        """The tally as a stored reference part."""
-        share, flagged, mean, sd = self.share(), self.share_flagged(), self.mean(), self.sd()
-        return PartReference(
-            rows=self.rows, flagged=self.flagged,
-            codes={code: CodeReference(
-                share=float(share[i]),
-                share_flagged=float(flagged[i]) if self.flagged else None,
-                mean_contribution=float(mean[i]), sd_contribution=float(sd[i]),
-            ) for i, code in enumerate(code_ids)},
-            score_cuts=tuple(float(c) for c in self.score_cuts),
-            score_shares=tuple(float(s) for s in self.score_bins / max(self.rows, 1)),
-            mean_probability=self.probability / max(self.rows, 1),
-            share_flagged=self.flagged / max(self.rows, 1),
-        )
+
+def reference_part(codes: CodeTally, scores: ScoreTally, code_ids: Sequence[str]) -> PartReference:
+    """Both tallies of the same events as a stored reference part."""
+    share, flagged, mean, sd = codes.share(), codes.share_flagged(), codes.mean(), codes.sd()
+    return PartReference(
+        rows=codes.rows, flagged=codes.flagged,
+        codes={code: CodeReference(
+            share=float(share[i]),
+            share_flagged=float(flagged[i]) if codes.flagged else None,
+            mean_contribution=float(mean[i]), sd_contribution=float(sd[i]),
+        ) for i, code in enumerate(code_ids)},
+        score_cuts=tuple(float(c) for c in scores.score_cuts),
+        score_shares=tuple(float(s) for s in scores.shares()),
+        mean_probability=scores.probability / max(scores.rows, 1),
+        share_flagged=scores.flagged / max(scores.rows, 1),
+    )
+
+
+class CodeSample:
+    """A seeded uniform random sample of at most ``size`` rows of a stream of chunks, without
+    replacement (each row gets a uniform key; the ``size`` smallest keys are kept), so the
+    costly explanations run on a fixed number of events however long the window."""
+
+    def __init__(self, size: int, seed: int = 0) -> None:
+        self.size = size
+        self.rng = np.random.default_rng(seed)
+        self.keys = np.empty(0)
+        self.values: np.ndarray | None = None
+        self.seen = 0
+
+    def add(self, values: np.ndarray) -> None:
+        self.seen += values.shape[0]
+        keys = self.rng.random(values.shape[0])
+        if self.values is None:
+            self.values = values[:0]
+        keys, values = np.concatenate([self.keys, keys]), np.concatenate([self.values, values])
+        if keys.size > self.size:
+            keep = np.argpartition(keys, self.size - 1)[:self.size]
+            keys, values = keys[keep], values[keep]
+        self.keys, self.values = keys, values
+
+    @property
+    def sampled(self) -> bool:
+        return self.seen > self.size
+
+    def rows(self) -> np.ndarray:
+        """The sampled rows (in no particular order)."""
+        if self.values is None:
+            return np.empty((0, 0))
+        return self.values
 
 
 @dataclass
