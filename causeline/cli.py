@@ -380,6 +380,10 @@ def _drift_parser(commands) -> None:  # type: ignore[no-untyped-def]
     drift.add_argument("--until", help="time to stop before (exclusive)")
     drift.add_argument("--label", metavar="COLUMN",
                        help="0/1 outcome column: adds the calibration checks")
+    drift.add_argument("--failures", metavar="LOG", type=Path,
+                       help="failure log: outcomes for the calibration checks, each event "
+                            "labelled as training labels snapshots (bundles trained from "
+                            "timelines: horizon, failure types and columns from its timeline)")
     drift.add_argument("--against", choices=("training", "held-out"), default="training",
                        help="reference part for codes and scores (default: every training row)")
     drift.add_argument("--code-sample", type=int, default=200_000, metavar="N",
@@ -396,7 +400,7 @@ def _drift(args: argparse.Namespace) -> int:
 
     sample = None if args.code_sample == 0 else args.code_sample
     options = DriftOptions(since=args.since, until=args.until, label=args.label,
-                           against=args.against, code_sample=sample)
+                           against=args.against, code_sample=sample, failures=args.failures)
     result = run_drift(load_bundle(args.bundle), args.input, args.out, options,
                        progress=_progress(args))
     window = result.summary["window"]

@@ -23,6 +23,7 @@ from causeline.service.bundle.load import Bundle
 from causeline.service.bundle.reference import Reference, load_reference
 from causeline.service.drift import checks
 from causeline.service.drift.intake import CHUNK_ROWS, chunks, open_source
+from causeline.service.drift.outcomes import FailureOutcomes
 from causeline.service.drift.page import CAUTION, write_report
 from causeline.service.drift.tally import (
     CodeSample,
@@ -48,6 +49,7 @@ class DriftOptions:
     since: str | None = None
     until: str | None = None
     label: str | None = None
+    failures: Path | None = None  # outcomes joined from this failure log (timeline bundles)
     against: str = "training"  # which part's codes and scores: training or held-out
     replicates: int = 200
     seed: int = 0
@@ -95,6 +97,9 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     text = list(dict.fromkeys([spec.id, *([spec.entity] if spec.entity else []),
                                *(f.source_column for f in categorical)]))
     labelled: list[tuple[np.ndarray, np.ndarray]] = []
+    if options.label is not None and options.failures is not None:
+        raise DataError("give outcomes once: --label COLUMN or --failures LOG, not both")
+    outcomes = None if options.failures is None else FailureOutcomes.of(spec, options.failures)
     entities: set[str] = set()
     progress.step("reading and scoring the window")
     for frame in chunks(bundle, source, text):
@@ -117,6 +122,9 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
                 raise DataError(f"--label {options.label!r}: no such column in {input_path}")
             labelled.append((probability,
                              binary_column(frame[options.label], options.label, "label")))
+        if outcomes is not None:
+            outcomes.add(frame)
+            labelled.append((probability, np.empty(0)))
         progress(f"{features.rows} events checked")
     if features.rows == 0:
         window = "" if source.since is None and source.until is None else " in the window"
@@ -133,10 +141,19 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     findings += checks.code_findings(codes, part, scorer.code_ids, scorer.catalogue.causes,
                                      units)
     findings += checks.score_findings(scores, part, units)
-    calibration = None
+    calibration, told = None, None
     if labelled:
         p = np.concatenate([pair[0] for pair in labelled])
-        y = np.concatenate([pair[1] for pair in labelled]).astype(float)
+        if outcomes is not None:
+            progress.step("joining outcomes from the failure log")
+            y, told = outcomes.labels(options.failures)  # type: ignore[arg-type]
+            known = ~np.isnan(y)
+            p, y = p[known], y[known]
+        else:
+            y = np.concatenate([pair[1] for pair in labelled]).astype(float)
+            told = {"source": "label column", "column": options.label}
+        told["calibration"] = ("checked" if 0 < y.sum() < y.size else
+                               f"not checked: {int(y.sum())} events among {y.size} outcomes")
         if 0 < y.sum() < y.size:
             progress.step("bootstrapping calibration")
             calibration = checks.calibration_checks(
@@ -146,6 +163,7 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     tables = _tables(findings, decided.alpha, features, scores, part, calibration)
     summary = _summary(bundle, reference, source, options, features.rows, scores, decided,
                        calibration)
+    summary["outcomes"] = told
     summary["codes"] = {"events_explained": codes.rows,
                         "sampled": sample is not None and sample.sampled,
                         "sample_size": options.code_sample, "seed": options.seed}

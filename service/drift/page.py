@@ -73,8 +73,10 @@ def context(summary: dict[str, Any], tables: Mapping[str, pd.DataFrame],
         "scores_chart": _score_bars(tables["scores"]),
         "scores": _score_rows(checks),
         "calibration": _calibration(summary, tables.get("calibration"), checks),
+        "outcomes": summary.get("outcomes"),
         "limits": LIMITS,
         "units": "entities" if window.get("entities") else "events",
+        "unit_count": f"{window.get('entities') or window['events']:,}",
         "against": summary["reference"]["codes_and_scores"],
     }
 
@@ -86,10 +88,13 @@ def _subtitle(summary: dict[str, Any]) -> str:
     if window["since"] or window["until"]:
         span = f", from {window['since'] or 'the start'} until {window['until'] or 'the end'}"
     reference = summary["reference"]
-    sampled = "; reason codes on a random sample" if reference.get("sampled") else ""
+    sampled = "; its codes and scores from a random sample" if reference.get("sampled") else ""
+    codes = summary.get("codes") or {}
+    explained = (f"; reason codes from a random sample of {codes['events_explained']:,} events"
+                 if codes.get("sampled") else "")
     return (f"Model {summary['model']} version {summary['version']}; {source} "
-            f"{window['input']}{span}; against the {reference['codes_and_scores']} reference "
-            f"({reference['rows']:,} rows{sampled})")
+            f"{window['input']}{span}{explained}; against the {reference['codes_and_scores']} "
+            f"reference ({reference['rows']:,} training rows{sampled})")
 
 
 def _order(table: pd.DataFrame, column: str) -> pd.DataFrame:
@@ -219,5 +224,19 @@ def _calibration(summary: dict[str, Any], table: pd.DataFrame | None,
         fmt="{:.3f}")
     rows = checks[checks["area"] == "calibration"].to_dict("records")
     return {"curve": curve, "forest": forest, "summary": found,
+            "source": _outcomes(summary.get("outcomes") or {}),
             "checks": [{**r, "check_name": CHECK_NAMES.get(r["check"], r["check"])}
                        for r in rows]}
+
+
+def _outcomes(told: Mapping[str, Any]) -> str:
+    """Where the outcomes came from, in a sentence."""
+    if told.get("source") == "failure log":
+        left = ("left out" if told.get("censored_as") == "exclude" else "counted as no event")
+        return (f"Outcomes joined from the failure log {told['failures']}: an event counts when "
+                f"a failure of the predicted types follows within {told['horizon']}, as in "
+                f"training; {told['censored']:,} events whose horizon runs past the end of "
+                f"observation are {left}.")
+    if told.get("column"):
+        return f"Outcomes from the column {told['column']}."
+    return ""
