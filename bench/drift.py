@@ -75,12 +75,14 @@ def _domains():  # type: ignore[no-untyped-def]
     }
 
 
-def study(folder: Path, seeds: int) -> None:
+def study(folder: Path, seeds: int, only: str | None = None) -> None:
     from causeline.service.bundle.load import load_bundle
     from causeline.service.drift.job import DriftOptions, run_drift
     from causeline.training.pipeline import train
 
     for domain, (config, label, draw, shifts, seed0) in _domains().items():
+        if only is not None and domain != only:
+            continue
         data = folder / f"{domain}.parquet"
         draw(seed0).to_parquet(data, index=False)
         bundle = load_bundle(train(config, data, folder / f"{domain}-bundle").path)
@@ -134,10 +136,11 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--study", action="store_true", help="false alarms and detection")
     parser.add_argument("--seeds", type=int, default=20)
+    parser.add_argument("--domain", choices=("demo", "ai4i"), help="one domain only")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="causeline-drift-") as scratch:
         if args.study:
-            study(Path(scratch), args.seeds)
+            study(Path(scratch), args.seeds, args.domain)
         else:
             speed(Path(scratch))
     return 0

@@ -136,7 +136,7 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
             codes.add(scorer.score(rows[start:start + CHUNK_ROWS]))
     roles = {f.name: f.role for f in spec.features}
     units = checks.Units(len(entities) or None, reference.entities) if spec.entity else \
-        checks.Units()
+        checks.Units(serial=True)
     findings = checks.feature_findings(features, reference, roles, units)
     findings += checks.code_findings(codes, part, scorer.code_ids, scorer.catalogue.causes,
                                      units)
@@ -164,6 +164,12 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     summary = _summary(bundle, reference, source, options, features.rows, scores, decided,
                        calibration)
     summary["outcomes"] = told
+    summary["units"] = {
+        "counted": "entities" if spec.entity else "rows, discounted for serial correlation",
+        "entities": len(entities) or None, "reference_entities": reference.entities,
+        "lowest_serial_factor": None if spec.entity else float(min(
+            features.serial.factor().min(initial=1.0), scores.serial.factor().min())),
+    }
     summary["codes"] = {"events_explained": codes.rows,
                         "sampled": sample is not None and sample.sampled,
                         "sample_size": options.code_sample, "seed": options.seed}
@@ -188,6 +194,8 @@ def _tables(findings: list[checks.Finding], alpha: float, features: FeatureTally
     feature_table = checks.subject_table(findings, alpha, "features")
     feature_table["new_categories"] = [checks.top_unseen(features.unseen[n])
                                        for n in feature_table["feature"]]
+    serial = dict(zip(features.names, features.serial.factor(), strict=True))
+    feature_table["serial_factor"] = [serial[n] for n in feature_table["feature"]]
     cuts = list(part.score_cuts)
     scores = pd.DataFrame({
         "low": [0.0, *cuts], "high": [*cuts, 1.0],

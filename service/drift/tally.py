@@ -79,6 +79,65 @@ def carried(codes: np.ndarray, top_k: int, min_contribution: float) -> np.ndarra
     return out
 
 
+BATCH_ROWS = 250  # consecutive rows per batch of the batch-means estimate
+GROUPS = 20  # batches are merged into this many consecutive groups
+
+
+@dataclass
+class SerialTally:
+    """How many independent rows a series of rows is worth, by batch means: the spread of the
+    means of consecutive groups of rows against the spread of single rows (a standard estimate
+    of the variance of a mean under serial correlation, whatever its form). Sums are kept per
+    batch of ``BATCH_ROWS`` rows as chunks arrive; missing values are skipped."""
+
+    columns: int
+    rows: int = 0
+    batches: list[np.ndarray] = field(default_factory=list)  # (3, columns): count, sum, squares
+    shift: np.ndarray | None = None
+    pending: np.ndarray | None = None
+
+    def add(self, values: np.ndarray) -> None:
+        values = np.asarray(values, dtype=float).reshape(len(values), self.columns)
+        if values.shape[0] == 0:
+            return
+        if self.shift is None:
+            self.shift = np.nan_to_num(values[0])
+        values = values - self.shift
+        self.rows += values.shape[0]
+        if self.pending is not None:
+            values = np.vstack([self.pending, values])
+        whole = values.shape[0] // BATCH_ROWS * BATCH_ROWS
+        for start in range(0, whole, BATCH_ROWS):
+            self.batches.append(_sums(values[start:start + BATCH_ROWS]))
+        self.pending = values[whole:] if whole < values.shape[0] else None
+
+    def factor(self) -> np.ndarray:
+        """Independent rows per row, at most 1 (1 where the series is too short to tell)."""
+        sums = list(self.batches) + ([_sums(self.pending)] if self.pending is not None else [])
+        if len(sums) < 5:
+            return np.ones(self.columns)
+        groups = np.stack([np.sum(part, axis=0) for part in
+                           np.array_split(np.stack(sums), min(GROUPS, len(sums)))])
+        count, total, squares = groups[:, 0], groups[:, 1], groups[:, 2]
+        n = count.sum(axis=0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = total.sum(axis=0) / n
+            row_var = squares.sum(axis=0) / n - mean**2
+            group_mean = total / count
+            # Variance of a group's mean, scaled to one row: count-weighted over the groups.
+            spread = np.nansum(count * (group_mean - mean) ** 2, axis=0) / (
+                (count > 0).sum(axis=0) - 1)
+            inflation = spread / row_var
+        inflation = np.where(np.isfinite(inflation), np.maximum(inflation, 1.0), 1.0)
+        return 1.0 / inflation
+
+
+def _sums(values: np.ndarray) -> np.ndarray:
+    present = ~np.isnan(values)
+    filled = np.where(present, values, 0.0)
+    return np.stack([present.sum(axis=0), filled.sum(axis=0), (filled * filled).sum(axis=0)])
+
+
 @dataclass
 class ScoreTally:
     """Sums over events of the calibrated probability: rows, flagged, and counts per reference
@@ -90,11 +149,14 @@ class ScoreTally:
     flagged: int = 0
     probability: float = 0.0
     bins: np.ndarray = field(init=False)
+    serial: SerialTally = field(init=False)
 
     def __post_init__(self) -> None:
         self.bins = np.zeros(self.score_cuts.size + 1, dtype=np.int64)
+        self.serial = SerialTally(1)
 
     def add(self, probability: np.ndarray) -> None:
+        self.serial.add(probability[:, None])
         self.rows += probability.size
         self.flagged += int((probability >= self.threshold).sum())
         self.bins += bin_counts(probability, self.score_cuts)
@@ -116,14 +178,18 @@ class CodeTally:
     carried_flagged: np.ndarray = field(init=False)
     total: np.ndarray = field(init=False)
     squares: np.ndarray = field(init=False)
+    serial: SerialTally = field(init=False)
 
     def __post_init__(self) -> None:
         self.carried = np.zeros(self.codes, dtype=np.int64)
         self.carried_flagged = np.zeros(self.codes, dtype=np.int64)
         self.total = np.zeros(self.codes)
         self.squares = np.zeros(self.codes)
+        self.serial = SerialTally(self.codes)
 
     def add(self, scored: Scored) -> None:
+        """A chunk of explained events, in the order they were read."""
+        self.serial.add(scored.carried)
         flagged = scored.probability >= self.threshold
         self.rows += scored.probability.size
         self.flagged += int(flagged.sum())
@@ -172,29 +238,33 @@ class CodeSample:
         self.size = size
         self.rng = np.random.default_rng(seed)
         self.keys = np.empty(0)
+        self.positions = np.empty(0, dtype=np.int64)
         self.values: np.ndarray | None = None
         self.seen = 0
 
     def add(self, values: np.ndarray) -> None:
+        positions = np.arange(self.seen, self.seen + values.shape[0])
         self.seen += values.shape[0]
         keys = self.rng.random(values.shape[0])
         if self.values is None:
             self.values = values[:0]
         keys, values = np.concatenate([self.keys, keys]), np.concatenate([self.values, values])
+        positions = np.concatenate([self.positions, positions])
         if keys.size > self.size:
             keep = np.argpartition(keys, self.size - 1)[:self.size]
-            keys, values = keys[keep], values[keep]
-        self.keys, self.values = keys, values
+            keys, values, positions = keys[keep], values[keep], positions[keep]
+        self.keys, self.values, self.positions = keys, values, positions
 
     @property
     def sampled(self) -> bool:
         return self.seen > self.size
 
     def rows(self) -> np.ndarray:
-        """The sampled rows (in no particular order)."""
+        """The sampled rows, in the order they were read (serial correlation is measured on
+        them as the codes' checks count them)."""
         if self.values is None:
             return np.empty((0, 0))
-        return self.values
+        return self.values[np.argsort(self.positions, kind="stable")]
 
 
 @dataclass
@@ -211,8 +281,10 @@ class FeatureTally:
     outside: np.ndarray = field(init=False)
     bins: list[np.ndarray] = field(init=False)
     unseen: dict[str, Counter[str]] = field(init=False)
+    serial: SerialTally = field(init=False)
 
     def __post_init__(self) -> None:
+        self.serial = SerialTally(len(self.names))
         self.missing = np.zeros(len(self.names), dtype=np.int64)
         self.outside = np.zeros(len(self.names), dtype=np.int64)
         self.bins = [np.zeros(len(self.references[n].shares), dtype=np.int64) for n in self.names]
@@ -222,6 +294,7 @@ class FeatureTally:
         """A chunk's feature matrix, and per categorical feature the unknown values it held
         (the feature builder reads those as missing; here they count as new, not missing)."""
         self.rows += values.shape[0]
+        self.serial.add(values)
         with np.errstate(invalid="ignore"):
             self.outside += ((values < self.low) | (values > self.high)).sum(axis=0)
         missing = np.isnan(values).sum(axis=0)
