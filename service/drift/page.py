@@ -75,8 +75,9 @@ def context(summary: dict[str, Any], tables: Mapping[str, pd.DataFrame],
         "calibration": _calibration(summary, tables.get("calibration"), checks),
         "outcomes": summary.get("outcomes"),
         "limits": LIMITS,
-        "units": "entities" if window.get("entities") else "events",
-        "unit_count": f"{window.get('entities') or window['events']:,}",
+        "counted": (f"{window['entities']:,} entities in the window" if window.get("entities")
+                    else "rows that follow one another in time, counted as fewer independent "
+                         "draws where neighbours move together (serial_factor in features.csv)"),
         "against": summary["reference"]["codes_and_scores"],
     }
 

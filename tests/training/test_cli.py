@@ -140,7 +140,8 @@ def trained(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 def test_bundle_is_data_only(trained: Path) -> None:
     names = sorted(p.name for p in trained.iterdir())
-    assert names == sorted([CHECKSUMS, MANIFEST, MODEL, "MODEL_CARD.md"])
+    assert names == sorted([CHECKSUMS, MANIFEST, MODEL, "MODEL_CARD.md", "reference.json"])
+    json.loads((trained / "reference.json").read_text())  # the drift reference: plain JSON
     manifest = json.loads((trained / MANIFEST).read_text())
     for key in ("schema_version", "dataset", "stats", "decision", "metrics", "explainer",
                 "data_fingerprint", "libraries", "calibration"):
