@@ -2,8 +2,10 @@
 
 ``python bench/drift.py`` times ``causeline drift`` on 10^6 demo events (a Parquet table, read
 in chunks; reason codes from the default sample of 200,000 events) in a process of its own and
-prints its wall time and peak memory (target: under a minute). ``python bench/drift.py --study --seeds 20`` trains one bundle per domain (the demo
-fleet, the AI4I simulation), then checks fresh draws of the same process (false alarms: any
+prints its wall time and peak memory (target: under a minute).
+
+``python bench/drift.py --study --seeds 20 [--domain demo|ai4i]`` trains one bundle per domain
+(the demo fleet, the AI4I simulation), then checks fresh draws of the same process (false alarms: any
 verdict but ``ok``) and draws with each planted shift (detected: a verdict other than ``ok``
 with a touched feature flagged; wrongly flagged: a feature or code the shift did not touch),
 and prints the rates with the worst seed.
