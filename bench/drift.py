@@ -5,10 +5,10 @@ in chunks; reason codes from the default sample of 200,000 events) in a process 
 prints its wall time and peak memory (target: under a minute).
 
 ``python bench/drift.py --study --seeds 20 [--domain demo|ai4i]`` trains one bundle per domain
-(the demo fleet, the AI4I simulation), then checks fresh draws of the same process (false alarms: any
-verdict but ``ok``) and draws with each planted shift (detected: a verdict other than ``ok``
-with a touched feature flagged; wrongly flagged: a feature or code the shift did not touch),
-and prints the rates with the worst seed.
+(the demo fleet, the AI4I simulation), then checks fresh draws of the same process (false
+alarms: any verdict but ``ok``) and draws with each planted shift (detected: a verdict other
+than ``ok`` with a touched feature flagged; wrongly flagged: a feature or code the shift did
+not touch), and prints the rates with the worst seed.
 """
 
 from __future__ import annotations
