@@ -383,8 +383,16 @@ def _drift_parser(commands) -> None:  # type: ignore[no-untyped-def]
     drift.add_argument("--until", help="time to stop before (exclusive)")
     drift.add_argument("--label", metavar="COLUMN",
                        help="0/1 outcome column: adds the calibration checks")
+    drift.add_argument("--failures", metavar="LOG", type=Path,
+                       help="failure log: outcomes for the calibration checks, each event "
+                            "labelled as training labels snapshots (bundles trained from "
+                            "timelines: horizon, failure types and columns from its timeline)")
     drift.add_argument("--against", choices=("training", "held-out"), default="training",
                        help="reference part for codes and scores (default: every training row)")
+    drift.add_argument("--code-sample", type=int, default=200_000, metavar="N",
+                       help="reason codes from a seeded random sample of N events (explaining "
+                            "is what costs; scores and inputs count every event); 0: every event "
+                            "(default 200,000)")
     drift.add_argument("--quiet", action="store_true", help="no progress on standard error")
     drift.set_defaults(run=_drift)
 
@@ -393,8 +401,9 @@ def _drift(args: argparse.Namespace) -> int:
     from causeline.service.bundle.load import load_bundle
     from causeline.service.drift.job import EXIT_CODES, DriftOptions, run_drift
 
+    sample = None if args.code_sample == 0 else args.code_sample
     options = DriftOptions(since=args.since, until=args.until, label=args.label,
-                           against=args.against)
+                           against=args.against, code_sample=sample, failures=args.failures)
     result = run_drift(load_bundle(args.bundle), args.input, args.out, options,
                        progress=_progress(args))
     window = result.summary["window"]

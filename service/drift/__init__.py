@@ -4,5 +4,5 @@ feature, reason-code drift, score drift and, where outcomes are known, calibrati
 (``ok``, ``watch``, ``retrain``) with the checks that decided it; CSVs, ``summary.json`` and an
 offline HTML page.
 
-May import: errors, progress, files, spec, features, bundle, explain.
+May import: errors, progress, files, spec, features, bundle, explain, report.
 """

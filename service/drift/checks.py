@@ -18,9 +18,10 @@ design.
 
 from __future__ import annotations
 
+import math
 from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -37,7 +38,7 @@ from causeline.service.drift.stats import (
     quantile_bins,
     share_p_value,
 )
-from causeline.service.drift.tally import CodeTally, FeatureTally
+from causeline.service.drift.tally import CodeTally, FeatureTally, ScoreTally
 
 LEVELS = ("ok", "watch", "retrain")
 ALPHA = 0.05
@@ -62,16 +63,33 @@ class Units:
     year is 80 draws of a case's age, not 29,200. Where the spec names an entity, tests count
     at most the distinct entities on each side (conservative for values that change from row
     to row); effect sizes always use every row.
+
+    Without an entity the rows are one series, and neighbours in time share a drifting room
+    temperature or a wandering gap: 50,000 runs whose temperature keeps 99.75 % of itself from
+    run to run hold about 60 independent draws. ``serial`` then scales each side by the
+    subject's ``factor``, independent rows per row in the window by batch means (see
+    :class:`~causeline.service.drift.tally.SerialTally`); the reference is taken to share it,
+    being the same process.
     """
 
     window: int | None = None
     reference: int | None = None
+    serial: bool = False
+    factor: float = 1.0
 
-    def n(self, rows: int) -> int:
-        return rows if self.window is None else min(rows, self.window)
+    def at(self, factor: float) -> Units:
+        """The units of one subject whose values have this serial ``factor``."""
+        return replace(self, factor=float(factor)) if self.serial else self
 
-    def m(self, rows: int) -> int:
-        return rows if self.reference is None else min(rows, self.reference)
+    def n(self, rows: int) -> float:
+        if self.window is not None:
+            return min(rows, self.window)
+        return min(rows, max(rows * self.factor, 1.0)) if rows else 0
+
+    def m(self, rows: int) -> float:
+        if self.reference is not None:
+            return min(rows, self.reference)
+        return min(rows, max(rows * self.factor, 1.0)) if rows else 0
 
 
 @dataclass(frozen=True)
@@ -99,7 +117,10 @@ class Finding:
 def feature_findings(tally: FeatureTally, reference: Reference,
                      roles: Mapping[str, str], units: Units) -> list[Finding]:
     out: list[Finding] = []
+    factors = tally.serial.factor()
+    all_units = units
     for position, name in enumerate(tally.names):
+        units = all_units.at(factors[position])
         ref = reference.features[name]
         decides = roles.get(name) != "context"
         rows = tally.rows
@@ -128,15 +149,33 @@ def feature_findings(tally: FeatureTally, reference: Reference,
             outside = int(tally.outside[position])
             share = outside / max(rows, 1)
             out.append(Finding("features", name, "outside_range_share", share, 0.0,
-                               share if outside >= MIN_ROWS else 0.0, None, "outside", decides))
+                               share if outside >= MIN_ROWS else 0.0,
+                               outside_p_value(share, units.n(rows), units.m(ref.rows)),
+                               "outside", decides))
     return out
+
+
+def outside_p_value(share: float, n: float, m: float) -> float:
+    """Chance of this share of ``n`` independent window draws falling outside the range of
+    ``m`` reference draws of the same process: each does with chance ``2 / (m + 1)`` (it is
+    the largest or the smallest of m + 1 exchangeable draws); a one-sided binomial test."""
+    from scipy import stats
+
+    trials = max(1, round(n))
+    hits = math.ceil(share * trials - 1e-9)
+    if hits == 0:
+        return 1.0
+    return float(stats.binom.sf(hits - 1, trials, min(1.0, 2.0 / (m + 1.0))))
 
 
 def code_findings(tally: CodeTally, part: PartReference, code_ids: Sequence[str],
                   causes: np.ndarray, units: Units) -> list[Finding]:
     out: list[Finding] = []
     share, flagged, mean, sd = tally.share(), tally.share_flagged(), tally.mean(), tally.sd()
+    factors = tally.serial.factor()
+    all_units = units
     for i, code in enumerate(code_ids):
+        units = all_units.at(factors[i])
         ref = part.codes.get(code)
         if ref is None:
             continue
@@ -159,8 +198,9 @@ def code_findings(tally: CodeTally, part: PartReference, code_ids: Sequence[str]
     return out
 
 
-def score_findings(tally: CodeTally, part: PartReference, units: Units) -> list[Finding]:
-    shares = tally.score_bins / max(tally.rows, 1)
+def score_findings(tally: ScoreTally, part: PartReference, units: Units) -> list[Finding]:
+    units = units.at(tally.serial.factor()[0])
+    shares = tally.shares()
     value = psi(np.asarray(part.score_shares), shares)
     above = tally.flagged / max(tally.rows, 1)
     return [

@@ -22,8 +22,16 @@ import pandas as pd
 from causeline.service.bundle.load import Bundle
 from causeline.service.bundle.reference import Reference, load_reference
 from causeline.service.drift import checks
-from causeline.service.drift.intake import chunks, open_source
-from causeline.service.drift.tally import CodeTally, FeatureTally, Scorer
+from causeline.service.drift.intake import CHUNK_ROWS, chunks, open_source
+from causeline.service.drift.outcomes import FailureOutcomes
+from causeline.service.drift.page import CAUTION, write_report
+from causeline.service.drift.tally import (
+    CodeSample,
+    CodeTally,
+    FeatureTally,
+    Scorer,
+    ScoreTally,
+)
 from causeline.service.errors import DataError
 from causeline.service.files.spreadsheet import escape_frame
 from causeline.service.files.storage import atomic_directory
@@ -32,6 +40,7 @@ from causeline.service.files.window import parse_time
 from causeline.service.progress import Progress, Silent
 
 PARTS = {"training": "training", "held-out": "held_out"}
+CODE_SAMPLE = 200_000
 EXIT_CODES = {"ok": 0, "watch": 10, "retrain": 11}
 
 
@@ -40,9 +49,13 @@ class DriftOptions:
     since: str | None = None
     until: str | None = None
     label: str | None = None
+    failures: Path | None = None  # outcomes joined from this failure log (timeline bundles)
     against: str = "training"  # which part's codes and scores: training or held-out
     replicates: int = 200
     seed: int = 0
+    # Reason codes are computed on a seeded uniform sample of this many events (explaining is
+    # what costs); None explains every event. Scores and inputs always count every event.
+    code_sample: int | None = CODE_SAMPLE
 
 
 @dataclass
@@ -74,12 +87,19 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     high = np.array([np.inf if stats[n].maximum is None or stats[n].categories is not None
                      else stats[n].maximum for n in names])
     features = FeatureTally(reference.features, names, low, high)
-    codes = CodeTally(len(scorer.code_ids), np.asarray(part.score_cuts),
-                      bundle.manifest.decision.threshold)
+    threshold = bundle.manifest.decision.threshold
+    if options.code_sample is not None and options.code_sample < 1:
+        raise DataError(f"--code-sample {options.code_sample}: give 0 (every event) or more")
+    scores = ScoreTally(np.asarray(part.score_cuts), threshold)
+    sample = CodeSample(options.code_sample or 0, options.seed) if options.code_sample else None
+    codes = CodeTally(len(scorer.code_ids), threshold)
     categorical = [f for f in spec.features if f.kind == "categorical" and not f.derived]
     text = list(dict.fromkeys([spec.id, *([spec.entity] if spec.entity else []),
                                *(f.source_column for f in categorical)]))
     labelled: list[tuple[np.ndarray, np.ndarray]] = []
+    if options.label is not None and options.failures is not None:
+        raise DataError("give outcomes once: --label COLUMN or --failures LOG, not both")
+    outcomes = None if options.failures is None else FailureOutcomes.of(spec, options.failures)
     entities: set[str] = set()
     progress.step("reading and scoring the window")
     for frame in chunks(bundle, source, text):
@@ -89,41 +109,75 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
         features.add(matrix.values, unseen)
         if spec.entity is not None and spec.entity in frame.columns:
             entities.update(frame[spec.entity].dropna().astype(str).unique())
-        scored = scorer.score(matrix.values)
-        codes.add(scored)
+        if sample is None:
+            scored = scorer.score(matrix.values)
+            codes.add(scored)
+            probability = scored.probability
+        else:
+            probability = scorer.probability(matrix.values)
+            sample.add(matrix.values)
+        scores.add(probability)
         if options.label is not None:
             if options.label not in frame.columns:
                 raise DataError(f"--label {options.label!r}: no such column in {input_path}")
-            labelled.append((scored.probability,
+            labelled.append((probability,
                              binary_column(frame[options.label], options.label, "label")))
+        if outcomes is not None:
+            outcomes.add(frame)
+            labelled.append((probability, np.empty(0)))
         progress(f"{features.rows} events checked")
     if features.rows == 0:
         window = "" if source.since is None and source.until is None else " in the window"
         raise DataError(f"{input_path}: no events of model {bundle.name!r}{window}")
+    if sample is not None:
+        progress.step(f"explaining {min(sample.seen, sample.size):,} events for reason codes")
+        rows = sample.rows()
+        for start in range(0, rows.shape[0], CHUNK_ROWS):
+            codes.add(scorer.score(rows[start:start + CHUNK_ROWS]))
     roles = {f.name: f.role for f in spec.features}
     units = checks.Units(len(entities) or None, reference.entities) if spec.entity else \
-        checks.Units()
+        checks.Units(serial=True)
     findings = checks.feature_findings(features, reference, roles, units)
     findings += checks.code_findings(codes, part, scorer.code_ids, scorer.catalogue.causes,
                                      units)
-    findings += checks.score_findings(codes, part, units)
-    calibration = None
+    findings += checks.score_findings(scores, part, units)
+    calibration, told = None, None
     if labelled:
         p = np.concatenate([pair[0] for pair in labelled])
-        y = np.concatenate([pair[1] for pair in labelled]).astype(float)
+        if outcomes is not None:
+            progress.step("joining outcomes from the failure log")
+            y, told = outcomes.labels(options.failures)  # type: ignore[arg-type]
+            known = ~np.isnan(y)
+            p, y = p[known], y[known]
+        else:
+            y = np.concatenate([pair[1] for pair in labelled]).astype(float)
+            told = {"source": "label column", "column": options.label}
+        told["calibration"] = ("checked" if 0 < y.sum() < y.size else
+                               f"not checked: {int(y.sum())} events among {y.size} outcomes")
         if 0 < y.sum() < y.size:
             progress.step("bootstrapping calibration")
             calibration = checks.calibration_checks(
                 p, y, bundle.manifest.metrics, replicates=options.replicates, seed=options.seed)
             findings += calibration.findings
     decided = checks.verdict(findings)
-    tables = _tables(findings, decided.alpha, features, codes, part, calibration)
-    summary = _summary(bundle, reference, source, options, features.rows, codes, decided,
+    tables = _tables(findings, decided.alpha, features, scores, part, calibration)
+    summary = _summary(bundle, reference, source, options, features.rows, scores, decided,
                        calibration)
+    summary["outcomes"] = told
+    summary["units"] = {
+        "counted": "entities" if spec.entity else "rows, discounted for serial correlation",
+        "entities": len(entities) or None, "reference_entities": reference.entities,
+        "lowest_serial_factor": None if spec.entity else float(min(
+            features.serial.factor().min(initial=1.0), scores.serial.factor().min())),
+    }
+    summary["codes"] = {"events_explained": codes.rows,
+                        "sampled": sample is not None and sample.sampled,
+                        "sample_size": options.code_sample, "seed": options.seed}
     summary["window"]["entities"] = len(entities) or None
     result = DriftResult(decided, summary, tables)
     if out is not None:
-        _write(out, result)
+        caution = CAUTION + (f" {spec.caution}" if spec.caution else "")
+        _write(out, result, caution)
         result.folder = Path(out)
     return result
 
@@ -135,16 +189,18 @@ def _unseen(column: pd.Series, categories: list[str]) -> Counter[str]:
 
 
 def _tables(findings: list[checks.Finding], alpha: float, features: FeatureTally,
-            codes: CodeTally, part: Any, calibration: checks.Calibration | None,
+            scores: ScoreTally, part: Any, calibration: checks.Calibration | None,
             ) -> dict[str, pd.DataFrame]:
     feature_table = checks.subject_table(findings, alpha, "features")
     feature_table["new_categories"] = [checks.top_unseen(features.unseen[n])
                                        for n in feature_table["feature"]]
+    serial = dict(zip(features.names, features.serial.factor(), strict=True))
+    feature_table["serial_factor"] = [serial[n] for n in feature_table["feature"]]
     cuts = list(part.score_cuts)
     scores = pd.DataFrame({
         "low": [0.0, *cuts], "high": [*cuts, 1.0],
         "reference_share": list(part.score_shares),
-        "share": codes.score_bins / max(codes.rows, 1),
+        "share": scores.shares(),
     })
     tables = {
         "features": feature_table,
@@ -158,7 +214,7 @@ def _tables(findings: list[checks.Finding], alpha: float, features: FeatureTally
 
 
 def _summary(bundle: Bundle, reference: Reference, source: Any, options: DriftOptions,
-             rows: int, codes: CodeTally, decided: checks.Verdict,
+             rows: int, scores: ScoreTally, decided: checks.Verdict,
              calibration: checks.Calibration | None) -> dict[str, Any]:
     return _finite({
         "model": bundle.name, "version": bundle.version,
@@ -173,8 +229,8 @@ def _summary(bundle: Bundle, reference: Reference, source: Any, options: DriftOp
         },
         "reference": {"codes_and_scores": options.against, "rows": reference.rows,
                       "sampled": reference.sampled},
-        "scores": {"mean_probability": codes.probability / max(codes.rows, 1),
-                   "share_flagged": codes.flagged / max(codes.rows, 1),
+        "scores": {"mean_probability": scores.probability / max(scores.rows, 1),
+                   "share_flagged": scores.flagged / max(scores.rows, 1),
                    "threshold": bundle.manifest.decision.threshold},
         "calibration": None if calibration is None else calibration.summary,
         "tests": decided.tests, "alpha_per_test": decided.alpha,
@@ -197,10 +253,11 @@ def _finite(value: Any) -> Any:
     return value
 
 
-def _write(out: Path, result: DriftResult) -> None:
+def _write(out: Path, result: DriftResult, caution: str) -> None:
     with atomic_directory(Path(out)) as staging:
         for name, table in result.tables.items():
             write_table(escape_frame(table), staging / f"{name}.csv")
         (staging / "summary.json").write_text(
             json.dumps(result.summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n",
             "utf-8")
+        write_report(staging / "report.html", result.summary, result.tables, caution)

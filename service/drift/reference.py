@@ -13,7 +13,13 @@ import numpy as np
 
 from causeline.service.bundle.reference import REFERENCE_FORMAT, Reference
 from causeline.service.drift.stats import decile_cuts
-from causeline.service.drift.tally import CodeTally, Scorer, feature_reference
+from causeline.service.drift.tally import (
+    CodeTally,
+    Scorer,
+    ScoreTally,
+    feature_reference,
+    reference_part,
+)
 from causeline.service.spec.dataset import DatasetSpec
 
 MAX_ROWS = 100_000
@@ -42,10 +48,12 @@ def build_reference(
         scores = [scorer.score(values[chunk]) for chunk in np.array_split(
             rows, max(1, -(-rows.size // CHUNK)))]
         probability = np.concatenate([s.probability for s in scores])
-        tally = CodeTally(len(scorer.code_ids), decile_cuts(probability), threshold)
+        codes = CodeTally(len(scorer.code_ids), threshold)
+        tally = ScoreTally(decile_cuts(probability), threshold)
         for scored in scores:
-            tally.add(scored)
-        parts[name] = tally.part(scorer.code_ids)
+            codes.add(scored)
+            tally.add(scored.probability)
+        parts[name] = reference_part(codes, tally, scorer.code_ids)
     return Reference(format=REFERENCE_FORMAT, rows=int(values.shape[0]), entities=entities,
                      sampled=sampled,
                      features=features, parts=parts)

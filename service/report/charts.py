@@ -166,15 +166,20 @@ def _scale(values: np.ndarray, include_zero: bool) -> tuple[float, float]:
 def bars(labels: Sequence[str], values: Sequence[float], *,
          reference: Sequence[float] | None = None, fmt: str = "{:.2f}",
          label: str = "bar chart", value_name: str = "now",
-         reference_name: str = "reference") -> Markup:
+         reference_name: str = "reference",
+         marks: Sequence[tuple[str, float]] = ()) -> Markup:
     """Horizontal bars from zero, one per label; a reference value per bar is drawn as a dark
-    tick across it (e.g. the training share beside the recent one). Blank values draw no bar."""
+    tick across it (e.g. the training share beside the recent one). Blank values draw no bar.
+    ``marks`` are (name, value) levels drawn as dashed lines across every bar (e.g. a watch
+    and a retrain limit), named under the chart; the scale always reaches them."""
     values = np.asarray(values, dtype=float)
     refs = None if reference is None else np.asarray(reference, dtype=float)
     if not len(labels):
         return _empty("Nothing to show.")
     left, width_plot, row, top = 190, 420, 22, 24
-    low, high = _scale(_finite(np.concatenate([values, refs if refs is not None else []])), True)
+    levels = [float(value) for _, value in marks]
+    low, high = _scale(_finite(np.concatenate([values, refs if refs is not None else [],
+                                               levels])), True)
     span = high - low
 
     def x(v: float) -> float:
@@ -201,7 +206,16 @@ def bars(labels: Sequence[str], values: Sequence[float], *,
     bottom = top + len(labels) * row
     out.append(f'<line x1="{x(0.0):.1f}" x2="{x(0.0):.1f}" y1="{top}" y2="{bottom}" '
                f'stroke="{RULE}"/>')
-    return _svg(left + width_plot + 80, bottom + 8, label, out)
+    for k, (name, value) in enumerate(marks):
+        if not math.isfinite(value):
+            continue
+        out.append(f'<line x1="{x(value):.1f}" x2="{x(value):.1f}" y1="{top}" y2="{bottom}" '
+                   f'stroke="{SECOND}" stroke-dasharray="4 3"><title>{escape(name)}: '
+                   f"{escape(fmt.format(value))}</title></line>"
+                   f'<text x="{x(value):.1f}" y="{bottom + 14 + 12 * (k % 2)}" '
+                   f'text-anchor="middle" fill="{SECOND}">{escape(name)} '
+                   f"{escape(fmt.format(value))}</text>")
+    return _svg(left + width_plot + 80, bottom + (36 if marks else 8), label, out)
 
 
 def intervals(labels: Sequence[str], estimates: Sequence[float], lows: Sequence[float],

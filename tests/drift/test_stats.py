@@ -113,3 +113,42 @@ def test_a_large_window_bootstraps_a_subset_with_the_spread_scaled() -> None:
     assert auc.estimate == pytest.approx(roc_auc_score(y, p), abs=1e-12)
     assert auc.low < a < auc.high
     assert 0.7 * 3.92 * se < auc.high - auc.low < 1.3 * 3.92 * se
+
+
+def _ar1(rng: np.random.Generator, n: int, keep: float) -> np.ndarray:
+    """A unit-variance first-order autoregression started in its stationary state."""
+    from scipy.signal import lfilter
+
+    shocks = rng.normal(0.0, math.sqrt(1 - keep**2), n)
+    shocks[0] = rng.normal()
+    return lfilter([1.0], [1.0, -keep], shocks)
+
+
+def test_serial_factor_in_chunks_and_the_spread_of_a_mean_of_an_autoregression() -> None:
+    # Over many series, the spread of the mean of n AR(1) values with keep 0.95 is that of
+    # n (1 - keep) / (1 + keep) independent ones (the textbook effective sample size, from
+    # memory); the batch-means factor must find it, read whole or in uneven chunks, and a
+    # series of independent values must keep (nearly) all its rows.
+    from causeline.service.drift.checks import Units
+    from causeline.service.drift.tally import SerialTally
+
+    rng = np.random.default_rng(8)
+    n, keep = 20_000, 0.95
+    means, factors = [], []
+    for _ in range(100):
+        series = _ar1(rng, n, keep)
+        whole, chunked = SerialTally(1), SerialTally(1)
+        whole.add(series[:, None])
+        for start in range(0, n, 3_333):
+            chunked.add(series[start:start + 3_333, None])
+        assert chunked.factor()[0] == pytest.approx(whole.factor()[0], rel=1e-6)
+        means.append(series.mean())
+        factors.append(whole.factor()[0])
+    planted = (1 - keep) / (1 + keep)
+    assert np.median(factors) == pytest.approx(planted, rel=0.25)
+    effective = Units(serial=True).at(float(np.median(factors))).n(n)
+    assert np.std(means) == pytest.approx(1 / math.sqrt(effective), rel=0.25)
+    independent = SerialTally(2)
+    independent.add(rng.normal(size=(n, 2)))
+    assert (independent.factor() > 0.4).all()
+    assert Units(window=80).at(0.01).n(29_200) == 80  # the entities rule is left as it is

@@ -56,6 +56,20 @@ def test_bars_are_proportional_to_their_values() -> None:
     assert widths[1] == pytest.approx(2 * widths[0], rel=0.01)
 
 
+def test_a_mark_sits_where_a_bar_of_its_value_ends() -> None:
+    svg = charts.bars(["a", "b"], [0.02, 0.6], marks=[("watch", 0.1), ("retrain", 0.6)])
+    ((x0, width),) = _floats(r'<rect x="([\d.]+)" y="\d+" width="([\d.]+)" height="13" '
+                             r'fill="#0f6e6a"><title>b', svg)
+    lines = dict(_floats(r'<line x1="([\d.]+)" x2="([\d.]+)" y1="\d+" y2="\d+" '
+                         r'stroke="#c98a12"', svg))
+    assert len(lines) == 2
+    assert max(lines) == pytest.approx(x0 + width, abs=0.2)  # retrain 0.6 at the end of b
+    assert min(lines) - x0 == pytest.approx(width / 6, abs=0.2)  # watch 0.1 a sixth of it
+    # The scale reaches a mark past every bar: 0.25 is drawn, not clipped.
+    svg = charts.bars(["a"], [0.01], marks=[("retrain", 0.25)])
+    assert "retrain 0.25" in svg
+
+
 def test_an_interval_holds_its_estimate_and_a_blank_row_says_so() -> None:
     svg = charts.intervals(["a", "b"], [1.0, np.nan], [0.0, np.nan], [3.0, np.nan])
     ((x1, x2),) = _floats(r'<line x1="([\d.]+)" x2="([\d.]+)" y1="\d+" y2="\d+" '
