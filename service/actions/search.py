@@ -154,7 +154,8 @@ class ActionFinder:
         changes = [Change(self.names[i], self.shown(i, row[i]), option.shown)
                    for i, option in picks]
         moved = [Change(self.names[j], self.shown(j, row[j]), float(v))
-                 for _, option in picks for j, v in option.moved if v != row[j]]
+                 for _, option in picks for j, v in option.moved
+                 if not np.isnan(v) and v != row[j]]  # a missing follower stays missing
         edits = tuple((i, option.value) for i, option in picks) + tuple(
             (j, v) for _, option in picks for j, v in option.moved)
         return Action(changes, cost, before, after, best is not None, edits, moved=moved)

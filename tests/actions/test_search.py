@@ -186,3 +186,16 @@ def test_json_lines_say_null_where_no_change_is_proposed(tmp_path) -> None:  # t
     assert moved and all(set(c) == {"feature", "from", "to"} for r in moved
                          for c in r["changes"])
     assert all(isinstance(r["reason_codes_after"], list) for r in moved)
+
+
+def test_a_missing_follower_stays_missing_and_is_not_listed(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    config = _config((1.0, 1.0), (0.0, 0.0), "both", follow=True)
+    bundle = load_bundle(_bundle(tmp_path, 11, config))
+    finder = ActionFinder(bundle, max_changes=2)
+    c = finder.names.index("c")
+    for a in range(21):
+        row = np.array([float(a), 20.0, np.nan])
+        row[c] = np.nan
+        action = finder.find(row)
+        assert action.moved == []
+        assert all(np.isnan(v) for j, v in action.edits if j == c)
