@@ -28,7 +28,7 @@ import pandas as pd
 
 from causeline.service.bundle.load import Bundle
 from causeline.service.explain.explainer import Explainer, Explanation
-from causeline.service.explain.score import calibrate
+from causeline.service.explain.score import probability
 from causeline.service.explain.treeparse import NUMERICAL, Forest, parse_forest
 from causeline.service.spec.dataset import ChangeSpec, FeatureSpec
 
@@ -192,12 +192,9 @@ class ActionFinder:
         return reached, found(int(np.argmin(p)))
 
     def probability(self, rows: np.ndarray) -> np.ndarray:
-        """Calibrated probabilities of model-ready rows. One thread: the search predicts a few
-        dozen rows at a time, where LightGBM's OpenMP start-up cost more than the trees (a
-        20-row batch of the 300-tree demo model: 9.5 ms with the default threads on a busy
-        2-core machine, 0.8 ms with one)."""
-        raw = self.bundle.booster.predict(rows, raw_score=True, num_threads=1)
-        return calibrate(self.bundle.manifest.calibration, raw)
+        """Calibrated probabilities of model-ready rows (the search's batches are small, so
+        they run on one thread: see :func:`~causeline.service.explain.score.predict_raw`)."""
+        return probability(self.bundle, rows)
 
     def shown(self, i: int, value: float) -> float | str | None:
         if np.isnan(value):
@@ -299,12 +296,18 @@ class Actions:
     def find(cls, explainer: Explainer, explanation: Explanation, max_changes: int,
              finder: ActionFinder | None = None) -> Actions:
         """Actions for every event of ``explanation`` at or above the threshold."""
+        return cls.of_rows(explainer, explanation.features.values, explanation.probability,
+                           max_changes, finder)
+
+    @classmethod
+    def of_rows(cls, explainer: Explainer, values: np.ndarray, probability: np.ndarray,
+                max_changes: int, finder: ActionFinder | None = None) -> Actions:
+        """Actions for model-ready rows whose probabilities are known (no explanation needed:
+        only the changed events are explained, for their reason codes after)."""
         finder = finder or ActionFinder(explainer.bundle, max_changes)
-        values = explanation.features.values
-        needed = np.asarray(explanation.decision, dtype=bool)
+        needed = np.asarray(probability) >= explainer.bundle.manifest.decision.threshold
         actions = [finder.find(values[row]) if flag else Action([], 0.0, p, p, True)
-                   for row, (flag, p) in enumerate(zip(needed, explanation.probability,
-                                                       strict=True))]
+                   for row, (flag, p) in enumerate(zip(needed, probability, strict=True))]
         return cls(with_reasons(explainer, values, actions), needed)
 
     def frame(self) -> pd.DataFrame:

@@ -48,8 +48,10 @@ def records(model: Model, schema: EventSchema, events: Sequence[Mapping[str, Any
     if key not in finders:
         finders[key] = ActionFinder(bundle, max_changes)
     ids = [event_id(event, schema.id_field, k) for k, event in enumerate(events)]
-    explanation = model.explainer.explain(schema.frame(events, ids))
-    found = Actions.find(model.explainer, explanation, max_changes, finders[key])
+    values = bundle.builder.transform(schema.frame(events, ids)).values
+    finder = finders[key]
+    found = Actions.of_rows(model.explainer, values, finder.probability(values), max_changes,
+                            finder)
     return [_plain(r) for r in found.records()]
 
 

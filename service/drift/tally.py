@@ -21,8 +21,8 @@ from causeline.service.bundle.manifest import Calibration, FeatureStats
 from causeline.service.bundle.reference import CodeReference, FeatureReference, PartReference
 from causeline.service.drift.stats import bin_counts
 from causeline.service.explain.fastshap import FastTreeExplainer
-from causeline.service.explain.reasons import ReasonCatalogue
-from causeline.service.explain.score import calibrate
+from causeline.service.explain.reasons import ReasonCatalogue, carried
+from causeline.service.explain.score import calibrate, predict_raw
 from causeline.service.spec.dataset import DatasetSpec, ExplainSettings
 
 
@@ -58,25 +58,13 @@ class Scorer:
 
     def probability(self, values: np.ndarray) -> np.ndarray:
         """Calibrated probabilities alone: the trees' raw output, no explanation (cheap)."""
-        raw = self.booster.predict(values, raw_score=True)
-        return calibrate(self.calibration, np.asarray(raw, dtype=np.float64))
+        return calibrate(self.calibration, predict_raw(self.booster, values))
 
     def score(self, values: np.ndarray) -> Scored:
         contributions = self.engine.contributions(values)
         codes = self.catalogue.aggregate(contributions.values, values)
         return Scored(calibrate(self.calibration, contributions.raw), codes,
                       carried(codes, self.top_k, self.min_contribution))
-
-
-def carried(codes: np.ndarray, top_k: int, min_contribution: float) -> np.ndarray:
-    """Per event and code, whether the code is among the event's reasons (as
-    :meth:`ReasonCatalogue.rank` picks them: stable order, ``top_k``, above the minimum)."""
-    k = min(top_k, codes.shape[1])
-    order = np.argsort(-codes, axis=1, kind="stable")[:, :k]
-    rows = np.arange(codes.shape[0])[:, None]
-    out = np.zeros(codes.shape, dtype=bool)
-    out[rows, order] = codes[rows, order] > min_contribution
-    return out
 
 
 BATCH_ROWS = 250  # consecutive rows per batch of the batch-means estimate

@@ -110,9 +110,7 @@ class ReasonCatalogue:
         self, code_contributions: np.ndarray, top_k: int, min_contribution: float
     ) -> list[list[tuple[int, float]]]:
         """Up to ``top_k`` codes per event that raise the risk by more than ``min_contribution``."""
-        k = min(top_k, code_contributions.shape[1])
-        # A stable sort keeps catalogue order among ties, so rankings are reproducible.
-        order = np.argsort(-code_contributions, axis=1, kind="stable")[:, :k]
+        order = top_order(code_contributions, top_k)
         values = code_contributions[np.arange(order.shape[0])[:, None], order]
         return [
             [(c, v) for c, v in zip(row_o, row_v, strict=True) if v > min_contribution]
@@ -180,3 +178,20 @@ def format_value(value: Value) -> str:
     if float(value).is_integer() and abs(value) < 1e15:
         return str(int(value))
     return f"{value:.4g}" if abs(value) < 1e5 else f"{value:.0f}"
+
+
+def top_order(code_contributions: np.ndarray, top_k: int) -> np.ndarray:
+    """Per event, the positions of its ``top_k`` largest code contributions, largest first. A
+    stable sort keeps catalogue order among ties, so rankings are reproducible."""
+    k = min(top_k, code_contributions.shape[1])
+    return np.argsort(-code_contributions, axis=1, kind="stable")[:, :k]
+
+
+def carried(codes: np.ndarray, top_k: int, min_contribution: float) -> np.ndarray:
+    """Per event and code, whether the code is among the event's reasons, as
+    :meth:`ReasonCatalogue.rank` picks them, without building the lists (a boolean mask)."""
+    order = top_order(codes, top_k)
+    rows = np.arange(codes.shape[0])[:, None]
+    out = np.zeros(codes.shape, dtype=bool)
+    out[rows, order] = codes[rows, order] > min_contribution
+    return out

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import lightgbm as lgb
 import numpy as np
 
 from causeline.service.bundle.load import Bundle
@@ -11,10 +12,15 @@ from causeline.service.explain.treeshap import SMALL_BATCH
 
 def raw_score(bundle: Bundle, features: np.ndarray) -> np.ndarray:
     """The boosted trees' output in log-odds, before calibration."""
+    return predict_raw(bundle.booster, features)
+
+
+def predict_raw(booster: lgb.Booster, features: np.ndarray) -> np.ndarray:
+    """A booster's log-odds; small batches on one thread, where OpenMP's start-up costs more
+    than the trees."""
     threads = 1 if features.shape[0] <= SMALL_BATCH else 0
-    return np.asarray(
-        bundle.booster.predict(features, raw_score=True, num_threads=threads), dtype=np.float64
-    )
+    return np.asarray(booster.predict(features, raw_score=True, num_threads=threads),
+                      dtype=np.float64)
 
 
 def calibrate(calibration: Calibration, raw: np.ndarray) -> np.ndarray:

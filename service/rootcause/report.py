@@ -14,8 +14,7 @@ import pandas as pd
 
 from causeline.service.report import charts, write_page
 from causeline.service.report.page import blank, when
-
-UNGROUPED_SUFFIX = "UNGROUPED"
+from causeline.service.rootcause.grouping import UNGROUPED
 
 
 @dataclass(frozen=True)
@@ -78,7 +77,7 @@ def context(data: ReportData) -> dict[str, Any]:
         "heatmap": charts.heatmap(data.heatmap, label="groups by reason codes"),
         "weekly": charts.strips(
             data.weekly, label="events per week by group",
-            muted=[c for c in map(str, data.weekly.columns) if c.endswith(UNGROUPED_SUFFIX)],
+            muted=[UNGROUPED],
         ),
         "examples": [_example(example) for example in data.examples],
         "gone": summary.get("gone", []),

@@ -21,7 +21,8 @@ from causeline.cli import main
 from causeline.service.bundle.load import Bundle
 from causeline.service.bundle.manifest import CHECKSUMS, MANIFEST
 from causeline.service.drift.job import DriftOptions, run_drift
-from causeline.service.drift.tally import CodeSample, Scorer, carried
+from causeline.service.drift.tally import CodeSample, Scorer
+from causeline.service.explain.reasons import carried
 from causeline.service.files.checksum import checksum_text
 from causeline.service.files.predlog import PredictionLogWriter
 from fixtures.demo.generate import SHIFTS, generate
