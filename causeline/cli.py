@@ -345,7 +345,7 @@ def _rootcause(args: argparse.Namespace) -> int:
 
 def _effect(args: argparse.Namespace) -> int:
     from causeline.service.bundle.load import load_bundle
-    from causeline.service.effect.job import EffectOptions, run_effect
+    from causeline.service.effect.job import NOTES_JOINED_BY, EffectOptions, run_effect
     from causeline.training.config import load_config
 
     options = EffectOptions(
@@ -369,6 +369,8 @@ def _effect(args: argparse.Namespace) -> int:
         if row["model_effect_per_1000"] == row["model_effect_per_1000"]:
             line += f"; model {row['model_effect_per_1000']:+.1f}"
         print(line)
+        for note in filter(None, row["note"].split(NOTES_JOINED_BY)):
+            print(f"    note: {note}")
     print("Measured under parallel trends on past logs; see docs/effect.md before acting.")
     return 0
 def _drift_parser(commands) -> None:  # type: ignore[no-untyped-def]

@@ -19,8 +19,13 @@ Gelbach & Miller 2008, REStat 90(3)) and takes the percentiles of the re-estimat
 widened for the number of clusters holding treated entities (:func:`expanded_tail`). A
 cluster is an entity unless ``clusters`` groups entities that share shocks (the cases of one
 store): then a store's entities are drawn, or left out, together.
-A placebo effect compares the later half of the ``before`` weeks with the earlier half the
-same way: far from zero, the two groups were already drifting apart before the action.
+The pre-trend checks parallel trends where the data can: the treated-minus-comparison
+difference per week before the action (cohorts weighted as the effect), its least-squares
+slope, carried over the weeks between the middle of the ``before`` weeks and the middle of
+the ``after`` weeks. It is the part of the effect a gap that kept widening as it did before
+would produce on its own (the linear pre-trend of an event study's leads; Roth 2022, AER:
+Insights 4(3), on why a test of it has limited power). Its interval comes from the same
+bootstrap; far from zero, the two groups were already drifting apart before the action.
 """
 
 from __future__ import annotations
@@ -30,11 +35,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import sparse, stats
 
-from causeline.service.effect.design import Stack
+from causeline.service.effect.design import Stack, Window
 
 PER = 1000.0
-# Columns of the per-row sums: events and days before, after, early and late before.
-_PARTS = 8
 
 
 @dataclass(frozen=True)
@@ -48,9 +51,10 @@ class Rates:
     treated_after: float
     comparison_before: float
     comparison_after: float
-    placebo: float
-    placebo_low: float
-    placebo_high: float
+    pretrend: float
+    pretrend_low: float
+    pretrend_high: float
+    balance: float
     replicates: int
 
     @property
@@ -75,39 +79,44 @@ class StackedDiD:
         resamples it with (entities sharing a label are drawn together); none: each entity
         alone. ``clusters_`` and ``treated_clusters_`` count the clusters in the stack and
         those holding a treated entity."""
-        parts = _parts(stack)
         codes, n_clusters = _cluster_codes(stack, clusters)
         self.clusters_ = n_clusters
         self.treated_clusters_ = int(np.unique(codes[stack.entity[stack.treated]]).size)
-        cohorts = stack.cohort_weeks.size
-        groups = 2 * cohorts
-        column = (2 * stack.cohort + stack.treated)[:, None] * _PARTS + np.arange(_PARTS)
+        groups = 2 * stack.cohort_weeks.size
+        width = stack.window.width
+        parts = np.concatenate([stack.events, stack.days], axis=1)
+        column = (2 * stack.cohort + stack.treated)[:, None] * 2 * width + np.arange(2 * width)
         matrix = sparse.csr_matrix(
-            (parts.ravel(), (np.repeat(stack.entity, _PARTS), column.ravel())),
-            shape=(stack.entities, groups * _PARTS))
+            (parts.ravel(), (np.repeat(stack.entity, 2 * width), column.ravel())),
+            shape=(stack.entities, groups * 2 * width))
         ones = np.ones((1, stack.entities))
-        point = _did(_sums(matrix, ones, groups))
+        point = _did(_sums(matrix, ones, groups, width), stack.window)
         rng = np.random.default_rng(self.seed)
         draws = []
         for start in range(0, self.bootstrap, 200):
             size = min(200, self.bootstrap - start)
             drawn = rng.multinomial(n_clusters, np.full(n_clusters, 1 / n_clusters), size=size)
             weights = np.concatenate([drawn, np.zeros((size, 1))], axis=1)[:, codes]
-            draws.append(_did(_sums(matrix, weights, groups)))
+            draws.append(_did(_sums(matrix, weights, groups, width), stack.window))
         tails = expanded_tail(self.level, self.treated_clusters_)
-        effect = np.concatenate([d["effect"] for d in draws]) if draws else np.empty(0)
-        placebo = np.concatenate([d["placebo"] for d in draws]) if draws else np.empty(0)
-        low, high = _percentiles(effect, tails)
-        placebo_low, placebo_high = _percentiles(placebo, tails)
+
+        def interval(name: str) -> tuple[np.ndarray, float, float]:
+            values = np.concatenate([d[name] for d in draws]) if draws else np.empty(0)
+            return (values, *_percentiles(values, tails))
+
+        effect, low, high = interval("effect")
+        _, pretrend_low, pretrend_high = interval("pretrend")
         self.rates_ = Rates(
             effect=float(point["effect"][0]), low=low, high=high,
             treated_before=float(point["treated_before"][0]),
             treated_after=float(point["treated_after"][0]),
             comparison_before=float(point["comparison_before"][0]),
             comparison_after=float(point["comparison_after"][0]),
-            placebo=float(point["placebo"][0]), placebo_low=placebo_low,
-            placebo_high=placebo_high, replicates=int(np.isfinite(effect).sum()))
-        self.weekly_ = _weekly(stack, point["weights"][0])
+            pretrend=float(point["pretrend"][0]), pretrend_low=pretrend_low,
+            pretrend_high=pretrend_high, balance=balance(stack, point["weights"][0]),
+            replicates=int(np.isfinite(effect).sum()))
+        self.weekly_ = {"treated": point["treated_weekly"][0],
+                        "comparison": point["comparison_weekly"][0]}
         return self
 
 
@@ -124,37 +133,28 @@ def _cluster_codes(stack: Stack, clusters: np.ndarray | None) -> tuple[np.ndarra
     return out[:-1], int(kept.size)
 
 
-def _parts(stack: Stack) -> np.ndarray:
-    """Per row: events and days before, after, and in the early and late halves of before."""
-    before, half = stack.window.before, stack.window.before // 2
-    spans = [(0, before), (before + 1, stack.window.width), (0, half), (half, before)]
-    out = np.empty((stack.entity.size, _PARTS))
-    for i, (a, b) in enumerate(spans):
-        out[:, 2 * i] = stack.events[:, a:b].sum(axis=1)
-        out[:, 2 * i + 1] = stack.days[:, a:b].sum(axis=1)
-    return out
-
-
-def _sums(matrix: sparse.csr_matrix, weights: np.ndarray, groups: int) -> np.ndarray:
-    """(replicates, groups, parts): the parts summed per group, entities weighted."""
+def _sums(matrix: sparse.csr_matrix, weights: np.ndarray, groups: int, width: int
+          ) -> np.ndarray:
+    """(replicates, groups, 2, width): events and observed days per group and week of the
+    window, entities weighted."""
     summed = np.asarray((matrix.T @ weights.T).T)
-    return summed.reshape(weights.shape[0], groups, _PARTS)
+    return summed.reshape(weights.shape[0], groups, 2, width)
 
 
-def _rate(sums: np.ndarray, part: int) -> np.ndarray:
-    days = sums[..., 2 * part + 1]
+def _rate(sums: np.ndarray, weeks: slice) -> np.ndarray:
+    """Events per 1,000 observed entity-days over ``weeks`` (NaN without an observed day)."""
+    events, days = sums[..., 0, weeks].sum(axis=-1), sums[..., 1, weeks].sum(axis=-1)
     with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(days > 0, PER * sums[..., 2 * part] / days, np.nan)
+        return np.where(days > 0, PER * events / days, np.nan)
 
 
-def _did(sums: np.ndarray) -> dict[str, np.ndarray]:
-    treated, comparison = sums[:, 1::2, :], sums[:, 0::2, :]
-    t_before, t_after = _rate(treated, 0), _rate(treated, 1)
-    c_before, c_after = _rate(comparison, 0), _rate(comparison, 1)
+def _did(sums: np.ndarray, window: Window) -> dict[str, np.ndarray]:
+    treated, comparison = sums[:, 1::2], sums[:, 0::2]
+    before, after = slice(0, window.before), slice(window.before + 1, window.width)
+    t_before, t_after = _rate(treated, before), _rate(treated, after)
+    c_before, c_after = _rate(comparison, before), _rate(comparison, after)
     change = (t_after - t_before) - (c_after - c_before)
-    placebo = ((_rate(treated, 3) - _rate(treated, 2))
-               - (_rate(comparison, 3) - _rate(comparison, 2)))
-    weights = np.where(np.isfinite(change), treated[..., 3], 0.0)
+    weights = np.where(np.isfinite(change), treated[..., 1, after].sum(axis=-1), 0.0)
     total = weights.sum(axis=1)
 
     def mean(values: np.ndarray, w: np.ndarray = weights) -> np.ndarray:
@@ -163,11 +163,60 @@ def _did(sums: np.ndarray) -> dict[str, np.ndarray]:
                             np.nansum(np.where(w > 0, values, 0.0) * w, axis=1) / w.sum(axis=1),
                             np.nan)
 
-    placebo_weights = np.where(np.isfinite(placebo), weights, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        weekly = PER * sums[..., 0, :] / sums[..., 1, :]  # (replicates, groups, weeks)
+
+    def by_week(rates: np.ndarray) -> np.ndarray:
+        """(replicates, weeks): per week, the cohorts' rates weighted as the effect."""
+        return np.stack([mean(rates[..., w], np.where(np.isfinite(rates[..., w]), weights, 0.0))
+                         for w in range(rates.shape[-1])], axis=1)
+
+    gaps = by_week(weekly[:, 1::2, :window.before] - weekly[:, 0::2, :window.before])
     return {"effect": np.where(total > 0, mean(change), np.nan),
             "treated_before": mean(t_before), "treated_after": mean(t_after),
             "comparison_before": mean(c_before), "comparison_after": mean(c_after),
-            "placebo": mean(placebo, placebo_weights), "weights": weights}
+            "pretrend": _slope(gaps) * ((window.before + window.after) / 2 + 1),
+            "treated_weekly": by_week(weekly[:, 1::2]),
+            "comparison_weekly": by_week(weekly[:, 0::2]), "weights": weights}
+
+
+def _slope(gaps: np.ndarray) -> np.ndarray:
+    """Per replicate, the least-squares slope of the weekly gaps over the weeks that have one
+    (NaN with fewer than three)."""
+    weeks = np.broadcast_to(np.arange(gaps.shape[1], dtype=float), gaps.shape)
+    present = np.isfinite(gaps)
+    count = present.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        centre = np.where(present, weeks, 0).sum(axis=1) / count
+        x = np.where(present, weeks - centre[:, None], 0.0)
+        slope = (x * np.where(present, gaps, 0.0)).sum(axis=1) / (x * x).sum(axis=1)
+    return np.where(count >= 3, slope, np.nan)
+
+
+def balance(stack: Stack, weights: np.ndarray) -> float:
+    """The standardized difference of the treated and comparison rows' rates before the
+    action: the difference of their means over the square root of their variances' mean
+    (each cohort's rows weighted by its share of the effect's weight). A common balance
+    check of matched comparisons; above about 0.25 the groups differ enough that results
+    lean on the model of the outcome (Stuart 2010, Statistical Science 25(1), a rule of
+    thumb; quoted from memory)."""
+    before = slice(0, stack.window.before)
+    events, days = stack.events[:, before].sum(axis=1), stack.days[:, before].sum(axis=1)
+    usable = days > 0
+    rate = PER * events[usable] / days[usable]
+    cohort, treated = stack.cohort[usable], stack.treated[usable]
+    moments = []
+    for side in (True, False):
+        rows = treated == side
+        per_cohort = np.bincount(cohort[rows], minlength=weights.size)
+        w = weights[cohort[rows]] / np.maximum(per_cohort[cohort[rows]], 1)
+        if w.sum() <= 0:
+            return float("nan")
+        average = float(np.average(rate[rows], weights=w))
+        moments.append((average, float(np.average((rate[rows] - average) ** 2, weights=w))))
+    (m1, v1), (m0, v0) = moments
+    spread = np.sqrt((v1 + v0) / 2)
+    return float((m1 - m0) / spread) if spread > 0 else 0.0
 
 
 def expanded_tail(level: float, clusters: int) -> float:
@@ -191,21 +240,3 @@ def _percentiles(values: np.ndarray, tails: float) -> tuple[float, float]:
         return float("nan"), float("nan")
     low, high = np.quantile(finite, [tails, 1 - tails])
     return float(low), float(high)
-
-
-def _weekly(stack: Stack, weights: np.ndarray) -> dict[str, np.ndarray]:
-    """Per week of the window, the treated and comparison rates (per 1,000 entity-days)."""
-    out = {}
-    cohorts = stack.cohort_weeks.size
-    for name, side in (("treated", True), ("comparison", False)):
-        rows = stack.treated == side
-        events = np.zeros((cohorts, stack.window.width))
-        days = np.zeros((cohorts, stack.window.width))
-        np.add.at(events, stack.cohort[rows], stack.events[rows])
-        np.add.at(days, stack.cohort[rows], stack.days[rows])
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rate = np.where(days > 0, PER * events / days, np.nan)
-        w = np.where(np.isfinite(rate), weights[:, None], 0.0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            out[name] = np.nansum(np.nan_to_num(rate) * w, axis=0) / w.sum(axis=0)
-    return out

@@ -60,9 +60,14 @@ CAUTION = (
 # than about 30-50 tend to be too narrow (Cameron, Gelbach & Miller 2008; with few treated
 # clusters, MacKinnon & Webb 2017, J. Applied Econometrics 32(2)).
 FEW_CLUSTERS = 30
+# A rule of thumb for the standardized difference of a baseline measure between treated and
+# comparison (Stuart 2010, Statistical Science 25(1); quoted from memory).
+UNBALANCED = 0.25
+NOTES_JOINED_BY = "; "  # no note holds it, so a reader can split the column on it
 MEASURED = ("treated_before_per_1000", "treated_after_per_1000", "comparison_before_per_1000",
             "comparison_after_per_1000", "effect_per_1000", "effect_low", "effect_high",
-            "relative_change", "placebo_per_1000", "placebo_low", "placebo_high")
+            "relative_change", "pretrend_per_1000", "pretrend_low", "pretrend_high",
+            "balance_before")
 
 
 @dataclass(frozen=True)
@@ -130,8 +135,9 @@ def study(
         if link.action_kind not in kinds:
             progress(f"step 3/3: measuring {link.action_kind}")
             built = stack(panel, link.action_kind, window)
-            following = after_failures(panel, panel.actions[link.action_kind],
-                                       options.failure_days, options.failure_excess)
+            following = after_failures(
+                panel, panel.actions[link.action_kind], options.failure_days,
+                options.failure_excess, around=(7.0 * options.before, 7.0 * (options.after + 1)))
             fit = (StackedDiD(options.bootstrap, options.level, options.seed).fit(
                 built, clusters) if built.cohort_weeks.size else None)
             kinds[link.action_kind] = (built, following, fit)
@@ -229,26 +235,34 @@ def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
             "comparison_before_per_1000": rates.comparison_before,
             "comparison_after_per_1000": rates.comparison_after,
             "effect_per_1000": rates.effect, "effect_low": rates.low, "effect_high": rates.high,
-            "relative_change": rates.relative, "placebo_per_1000": rates.placebo,
-            "placebo_low": rates.placebo_low, "placebo_high": rates.placebo_high,
+            "relative_change": rates.relative, "pretrend_per_1000": rates.pretrend,
+            "pretrend_low": rates.pretrend_low, "pretrend_high": rates.pretrend_high,
+            "balance_before": rates.balance,
         })
-        if rates.placebo_low > 0 or rates.placebo_high < 0:
+        if rates.pretrend_low > 0 or rates.pretrend_high < 0:
             notes.append(
-                f"trends differed before the action (placebo {rates.placebo:+.1f} per 1,000, "
-                f"interval {rates.placebo_low:+.1f} to {rates.placebo_high:+.1f}): parallel "
-                "trends is in doubt, read the effect with care")
+                f"the groups were drifting apart before the action: carried on, that drift "
+                f"alone gives {rates.pretrend:+.1f} per 1,000 (interval "
+                f"{rates.pretrend_low:+.1f} to {rates.pretrend_high:+.1f}), so parallel trends "
+                "is in doubt: read the effect with care")
+        if abs(rates.balance) > UNBALANCED:
+            notes.append(
+                f"the treated had {rates.treated_before:.1f} events per 1,000 before the action"
+                f" and the comparison {rates.comparison_before:.1f} (standardized difference "
+                f"{rates.balance:+.2f}, above {UNBALANCED}), and groups that start apart need "
+                "not trend alike: read the effect with care")
         if fit is not None and fit.treated_clusters_ < FEW_CLUSTERS:
             notes.append(
                 f"the interval resamples {fit.clusters_} clusters ({unit}), {fit.treated_clusters_}"
-                f" of them with treated entities; with fewer than about {FEW_CLUSTERS} treated "
-                "clusters a bootstrap interval tends to be too narrow (common practice), read it "
-                "with care")
+                f" of them with treated entities, and with fewer than about {FEW_CLUSTERS} "
+                "treated clusters a bootstrap interval tends to be too narrow (common practice):"
+                " read it with care")
         if math.isnan(rates.low):
             notes.append("too few bootstrap replicates had a usable block for an interval")
     if built.unmatched:
         notes.append(f"{built.unmatched} treated episodes left out: no entity went without "
                      "the action in their weeks")
-    row["note"] = "; ".join(notes)
+    row["note"] = NOTES_JOINED_BY.join(notes)
     row.update({
         "model_effect_per_1000": float("nan") if model is None else model.effect,
         "model_snapshots": 0 if model is None else model.snapshots,
@@ -271,7 +285,8 @@ def _warnings(built: Stack, following: Following, options: EffectOptions) -> lis
         out.append(
             f"follows failures: {following.share:.0%} of these actions came within "
             f"{options.failure_days:g} days after a failure of the same entity, against "
-            f"{following.chance:.0%} of observed time; repairs after a breakdown are not a "
+            f"{following.chance:.0%} of the same entities' observed time; repairs after a "
+            "breakdown are not a "
             "random fix, and the rate falling back after a bad spell would be credited to them")
     if built.episodes == 0:
         out.append(

@@ -28,6 +28,7 @@ from causeline.service.effect.estimate import StackedDiD, expanded_tail
 from causeline.service.effect.job import EffectOptions, study
 from causeline.service.effect.link import links
 from causeline.service.effect.panel import entity_weeks
+from causeline.service.effect.trigger import after_failures
 from causeline.service.errors import ConfigError, DataError
 from causeline.service.features.logs import TimelineInputs
 from causeline.service.spec.dataset import DatasetSpec
@@ -174,6 +175,69 @@ def test_a_kind_without_effect_on_a_flat_fleet_measures_zero() -> None:
     assert built.count(True) == 12 and built.crowded == 0
 
 
+def _seasonal_logs(seed: int, after_failure: bool) -> TimelineInputs:
+    """40 entities read hourly for 52 weeks; a failure every third day in weeks 20-30 (the
+    season) and every 30th day outside it, each entity on its own phase. One service per
+    entity: on a random hour in the season, or 2-4 days after a random failure outside it."""
+    rng = np.random.default_rng(seed)
+    start = pd.Timestamp("2025-01-06")
+    hours = pd.date_range(start, periods=52 * 7 * 24, freq="h")
+    names = [f"E{i:02d}" for i in range(40)]
+    readings = pd.DataFrame({"unit": np.repeat(names, hours.size),
+                             "time": np.tile(hours, len(names)), "load": 1.0})
+    failures, actions = [], []
+    for name in names:
+        day, own = float(rng.uniform(0, 30)), []
+        while day < 52 * 7:
+            own.append(start + pd.Timedelta(days=day))
+            day += 3 if 140 <= day < 210 else 30
+        failures += [(name, t) for t in own]
+        if after_failure:
+            calm = [t for t in own if not 140 <= (t - start).days < 210 and (t - start).days > 50
+                    and (t - start).days < 300]
+            when = calm[rng.integers(len(calm))] + pd.Timedelta(days=float(rng.uniform(2, 4)))
+        else:
+            when = start + pd.Timedelta(days=float(rng.uniform(140, 210)))
+        actions.append((name, when, "service"))
+    return TimelineInputs(readings, pd.DataFrame(failures, columns=["unit", "time"]),
+                          pd.DataFrame(actions, columns=["unit", "time", "kind"]))
+
+
+def _brute_chance(inputs: TimelineInputs, days: float, around: tuple[float, float]) -> float:
+    """The reference: per action, on a grid of minutes over its window, the share of points
+    within ``days`` after a failure of its entity; averaged over the actions."""
+    out = []
+    for unit, when in inputs.actions[["unit", "time"]].itertuples(index=False):
+        seen = inputs.readings.loc[inputs.readings["unit"] == unit, "time"]
+        low = max(when - pd.Timedelta(days=around[0]), seen.min())
+        high = min(when + pd.Timedelta(days=around[1]), seen.max())
+        grid = pd.date_range(low, high, freq="min").to_numpy()
+        failed = np.sort(inputs.failures.loc[inputs.failures["unit"] == unit, "time"].to_numpy())
+        last = np.searchsorted(failed, grid, side="right") - 1
+        since = grid - failed[np.maximum(last, 0)]
+        out.append(np.mean((last >= 0) & (since <= np.timedelta64(int(days * 86400), "s"))))
+    return float(np.mean(out))
+
+
+def test_following_failures_is_judged_against_the_same_entities_nearby_time() -> None:
+    # Services done in the season, when failures bunch, at random hours: the entities' own
+    # weeks around each service fail about as often, so no warning (against the entities'
+    # whole year the services would look like following failures). Services 2-4 days after a
+    # failure in calm weeks are flagged. The chance is checked against a brute-force count
+    # on a grid of minutes.
+    spec = _minimal_spec()
+    for after_failure in (False, True):
+        inputs = _seasonal_logs(4, after_failure)
+        panel = entity_weeks(spec.timeline, inputs)  # type: ignore[arg-type]
+        found = after_failures(panel, panel.actions["service"], around=(42.0, 49.0))
+        assert found.chance == pytest.approx(_brute_chance(inputs, 7.0, (42.0, 49.0)),
+                                             abs=0.005)
+        assert found.follows is after_failure, found
+        if not after_failure:
+            # Against each entity's whole year the same services would pass the excess rule.
+            assert found.share >= _brute_chance(inputs, 7.0, (400.0, 400.0)) + 0.2
+
+
 def test_kinds_link_to_their_fixes() -> None:
     found = {(link.action_kind, link.fix_kind): link for link in links(_spec())}
     assert found["coil_cleaning", "coil cleaning"].how == "its targets set since_coil_cleaning_d"
@@ -238,8 +302,56 @@ def test_command_writes_csvs_summary_and_page(tmp_path: Path, capsys) -> None:  
     page = (out / "report.html").read_text()
     assert "Did the fix work?" in page and "<script" not in page and "follows failures" in page
     assert "no number: follows failures" in capsys.readouterr().out
+    # Resampling its few stores gives every measured row a note, printed under the row.
+    assert causeline([*args[:-2], "--cluster-by", "store_id", "--out", str(tmp_path / "s")]) == 0
+    printed = capsys.readouterr().out
+    notes = pd.read_csv(tmp_path / "s" / "effects.csv")["note"].dropna()
+    assert len(notes) == 2 and all("    note: " + n.split("; ")[0] in printed for n in notes)
     assert causeline([*args[:-2], "--weeks-before", "0", "--out", str(tmp_path / "x")]) == 2
     assert causeline(["effect", "--config", str(config), "--out", str(tmp_path / "y")]) == 2
+
+
+def _weekly_stack(treated: np.ndarray, comparison: np.ndarray) -> Stack:
+    """One block, window 6 and 6: each row's rate per 1,000 days in each of the 13 weeks
+    (fractional events over 7 observed days a week)."""
+    rates = np.vstack([treated, comparison])
+    days = np.full(rates.shape, 7.0)
+    flags = np.array([True] * len(treated) + [False] * len(comparison))
+    return Stack(np.arange(len(rates)), np.zeros(len(rates), dtype=np.int64), flags,
+                 rates * days / 1000.0, days, np.array([10]), Window(6, 6),
+                 actions=len(treated), episodes=len(treated), unmatched=0, edge=0, crowded=0)
+
+
+def test_pretrend_is_the_weekly_gaps_trend_carried_to_the_weeks_after() -> None:
+    # The treated drift up by 1.5 per 1,000 a week before the action, the comparison is flat;
+    # each row has its own level, so the bootstrap has something to resample. The reference
+    # is numpy's least-squares line through the weekly gaps, carried over the 7 weeks between
+    # the middle of the weeks before (-3.5) and of the weeks after (+3.5).
+    rng = np.random.default_rng(5)
+    weeks = np.arange(13)
+    treated = 30 + rng.normal(0, 3, (40, 1)) + 1.5 * np.minimum(weeks, 6)
+    comparison = 30 + rng.normal(0, 3, (60, 1)) + 0 * weeks
+    rates = StackedDiD(bootstrap=299).fit(_weekly_stack(treated, comparison)).rates_
+    gaps = treated[:, :6].mean(axis=0) - comparison[:, :6].mean(axis=0)
+    assert rates.pretrend == pytest.approx(np.polyfit(np.arange(6), gaps, 1)[0] * 7)
+    assert rates.pretrend == pytest.approx(10.5)
+    assert rates.pretrend_low > 0
+    # Parallel before the action: a trend near zero whose interval holds zero.
+    flat = StackedDiD(bootstrap=299).fit(_weekly_stack(
+        treated - 1.5 * np.minimum(weeks, 6) + rng.normal(0, 2, treated.shape),
+        comparison + rng.normal(0, 2, comparison.shape))).rates_
+    assert flat.pretrend_low <= 0 <= flat.pretrend_high
+
+
+def test_balance_is_the_standardized_difference_before() -> None:
+    # Stuart (2010, Statistical Science 25(1)): the difference of the groups' means over the
+    # square root of the mean of their variances (population moments here, equal weights).
+    rng = np.random.default_rng(8)
+    treated = np.repeat(rng.gamma(4, 10, (30, 1)), 13, axis=1)
+    comparison = np.repeat(rng.gamma(4, 8, (50, 1)), 13, axis=1)
+    rates = StackedDiD(bootstrap=99).fit(_weekly_stack(treated, comparison)).rates_
+    t, c = treated[:, 0], comparison[:, 0]
+    assert rates.balance == pytest.approx((t.mean() - c.mean()) / np.sqrt((t.var() + c.var()) / 2))
 
 
 def _clustered_changes(seed: int) -> tuple[Stack, np.ndarray, np.ndarray]:
