@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import inspect
 import signal
 import threading
 from collections.abc import AsyncIterator
@@ -59,6 +60,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             "staff; follow local codes and licensed practice where safety is involved."
         ),
         lifespan=lifespan,
+        **telemetry(),
     )
     app.state.service = service
     document.install(app, service)
@@ -76,6 +78,32 @@ def create_app(settings: Settings | None = None) -> FastAPI:
                        max_bytes=settings.max_body_bytes, handlers=app.exception_handlers)
     app.add_middleware(MetricsMiddleware, metrics=service.metrics, routes=app.router.routes)
     return app
+
+
+# OpenTelemetry's stand-ins until a provider is set up (its API has no public "is set up").
+_PLACEHOLDERS = {"ProxyTracerProvider", "_ProxyMeterProvider", "ProxyLoggerProvider"}
+
+
+def telemetry() -> dict[str, Any]:
+    """FastAPI's own OpenTelemetry spans, metrics and logs: kept where a provider is set up
+    when the app is made (say by ``opentelemetry-instrument``), switched off otherwise.
+
+    FastAPI asks on every request whether a provider has been set up since, and that look-up
+    (it reads the environment) cost 3-4 % of a scoring request measured in-process; the
+    service's own metrics are Prometheus's, at ``/metrics``.
+    """
+    if "telemetry" not in inspect.signature(FastAPI).parameters:
+        return {}  # a FastAPI without it
+    try:
+        from opentelemetry import metrics, trace
+        from opentelemetry._logs import get_logger_provider
+    except ImportError:
+        return {}
+    providers = (trace.get_tracer_provider(), metrics.get_meter_provider(),
+                 get_logger_provider())
+    if any(type(provider).__name__ not in _PLACEHOLDERS for provider in providers):
+        return {}
+    return {"telemetry": {"tracing": False, "metrics": False, "logs": False}}
 
 
 def _route(app: FastAPI, path: str, method: str) -> Any:

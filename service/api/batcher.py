@@ -137,7 +137,8 @@ def explain_jobs(jobs: Sequence[Job]) -> list[Scored]:
     model, schema = jobs[0].model, jobs[0].schema
     events = [event for job in jobs for event in job.events]
     ids = [i for job in jobs for i in job.ids]
-    explanation = model.explainer.explain(schema.frame(events, ids))
+    explanation = model.explainer.explain_features(
+        model.bundle.builder.transform_records(events), ids)
     threshold = model.bundle.manifest.decision.threshold
     names = model.bundle.spec.feature_names
     problems = explanation.features.problems

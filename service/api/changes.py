@@ -16,7 +16,6 @@ import numpy as np
 from causeline.service.actions.search import ActionFinder, Actions
 from causeline.service.api.problems import FieldError, Problem
 from causeline.service.api.registry import Model
-from causeline.service.api.schema import EventSchema, event_id
 
 FLAG = "what-to-change"
 MOST = 4  # changes per action a request may ask for: the search grows with the power
@@ -34,7 +33,7 @@ def flag_value(raw: str | None) -> int | None:
         field=FLAG, message=f"the most features to change, 1 to {MOST} (empty: 2)")])
 
 
-def records(model: Model, schema: EventSchema, events: Sequence[Mapping[str, Any]],
+def records(model: Model, events: Sequence[Mapping[str, Any]],
             max_changes: int, finders: dict[tuple[str, int], ActionFinder]
             ) -> list[dict[str, Any] | None]:
     """Per event its action record, None where it is below the threshold (runs in a thread:
@@ -47,8 +46,7 @@ def records(model: Model, schema: EventSchema, events: Sequence[Mapping[str, Any
     key = (model.name, max_changes)
     if key not in finders:
         finders[key] = ActionFinder(bundle, max_changes)
-    ids = [event_id(event, schema.id_field, k) for k, event in enumerate(events)]
-    values = bundle.builder.transform(schema.frame(events, ids)).values
+    values = bundle.builder.transform_records(events).values
     finder = finders[key]
     found = Actions.of_rows(model.explainer, values, finder.probability(values), max_changes,
                             finder)

@@ -19,9 +19,9 @@ def service_of(request: Request) -> Service:
     return request.app.state.service  # type: ignore[no-any-return]
 
 
-def check_key(request: Request) -> None:
+def check_key(request: Request, service: Service | None = None) -> None:
     """A valid key when keys are configured (401 without one, 403 with a wrong one)."""
-    keys = service_of(request).keys
+    keys = (service or service_of(request)).keys
     if keys.enabled:
         keys.check(presented_keys(request))
 

@@ -19,11 +19,13 @@ from pydantic import BaseModel, ValidationError
 from starlette.requests import ClientDisconnect
 
 from causeline.service.api import jsonio as api_json
+from causeline.service.api.bodies import ScoreRequest
 from causeline.service.api.problems import FieldError, Problem
 
 Model = TypeVar("Model", bound=BaseModel)
 
 BOM = b"\xef\xbb\xbf"
+SCORE_FIELDS = ScoreRequest.model_fields.keys()
 CONTRIBUTIONS_HELP = "'all' adds every feature's contribution and base value"
 CHANGES_HELP = ("adds to each event at or above the threshold the cheapest allowed change of at "
                 "most N controllable features (empty: 2) that brings it below; needs the "
@@ -32,11 +34,33 @@ CHANGES_HELP = ("adds to each event at or above the threshold the cheapest allow
 
 async def read_body(request: Request, model: type[Model]) -> Model:
     """The request's JSON body validated into ``model``."""
-    media = request.headers.get("content-type")
+    return _validated(model, await read_json(request))
+
+
+async def read_events(request: Request) -> tuple[str | None, list[dict[str, Any]]]:
+    """A scoring body's model name and events, as :class:`ScoreRequest` reads them.
+
+    The usual body (an object holding ``events``, a non-empty list of objects, and perhaps
+    ``model``, text or null) is taken as parsed: validating it into the model, which copies
+    every event, cost more than checking its shape here. Any other body goes through
+    ``ScoreRequest``, so a refusal names the same fields in the same words.
+    """
+    data = await read_json(request)
+    if type(data) is dict and data.keys() <= SCORE_FIELDS:
+        events, model = data.get("events"), data.get("model")
+        if (type(events) is list and events and all(type(event) is dict for event in events)
+                and (model is None or type(model) is str)):
+            return model, events
+    payload = _validated(ScoreRequest, data)
+    return payload.model, payload.events
+
+
+async def read_json(request: Request) -> Any:
+    """The request's body parsed as JSON (400 when it is not, 415 for another media type)."""
+    media, coding = _headers(request)
     if media is not None and not _is_json(media):
         raise Problem(415, f"the body is sent as {media[:60]!r}; send it as JSON with the "
                       "header Content-Type: application/json", "unsupported-media-type")
-    coding = request.headers.get("content-encoding")
     if coding is not None and coding.strip().lower() not in {"", "identity"}:
         # RFC 9110 section 15.5.16: an unsupported content coding is a 415.
         raise Problem(415, f"the body is sent with Content-Encoding {coding[:40]!r}; send it "
@@ -48,11 +72,26 @@ async def read_body(request: Request, model: type[Model]) -> Model:
     if not body.strip():
         raise RequestValidationError([{"type": "missing", "loc": ("body",), "msg": "required"}])
     try:
-        data = api_json.loads(body)
+        return api_json.loads(body)
     except ValueError as exc:  # the parser's words, say "number out of range at line 1 ..."
         raise RequestValidationError(
             [{"type": "json_invalid", "loc": ("body",), "msg": str(exc)[:200]}]
         ) from None
+
+
+def _headers(request: Request) -> tuple[str | None, str | None]:
+    """The first Content-Type and Content-Encoding, as ``request.headers`` gives them, read in
+    one pass (a missing header costs ``Headers.get`` a raised and caught KeyError)."""
+    media = coding = None
+    for name, value in request.scope["headers"]:
+        if name == b"content-type" and media is None:
+            media = value.decode("latin-1")
+        elif name == b"content-encoding" and coding is None:
+            coding = value.decode("latin-1")
+    return media, coding
+
+
+def _validated(model: type[Model], data: Any) -> Model:
     try:
         return model.model_validate(data)
     except ValidationError as exc:

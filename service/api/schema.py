@@ -13,8 +13,6 @@ import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-import numpy as np
-
 from causeline.service.api.problems import FieldError
 from causeline.service.bundle.load import Bundle
 from causeline.service.errors import RowProblem
@@ -160,25 +158,6 @@ class EventSchema:
                 return None
             return f"expected a string (a category), got {json_type(value)}"
         return number_error(value)
-
-    def frame(
-        self, events: Sequence[Mapping[str, Any]], ids: Sequence[str]
-    ) -> dict[str, np.ndarray]:
-        """The checked events as columns the feature builder reads (ids always present).
-
-        Plain arrays rather than a DataFrame: building one costs more than explaining an event.
-        """
-        columns: dict[str, np.ndarray] = {}
-        for name in self.required:
-            values = [event[name] for event in events]
-            if name in self.text:
-                columns[name] = np.array(
-                    [None if v is None else str(v) for v in values], dtype=object
-                )
-            else:
-                columns[name] = np.array(values, dtype=np.float64)  # None becomes NaN
-        columns[self.id_field] = np.array(list(ids), dtype=object)
-        return columns
 
     def problem_errors(self, problems: Sequence[RowProblem], offset: int = 0) -> list[FieldError]:
         """Feature-builder problems (unknown category, missing, ...) as field errors."""

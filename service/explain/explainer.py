@@ -61,13 +61,17 @@ class Explainer:
 
     def explain(self, table: Table) -> Explanation:
         """Explain every row; rows with problems are scored with those cells treated as missing."""
-        matrix = self.bundle.builder.transform(table)
+        return self.explain_features(self.bundle.builder.transform(table),
+                                     _ids(table, self.bundle.spec.id))
+
+    def explain_features(self, matrix: FeatureMatrix, ids: list[str]) -> Explanation:
+        """Explain rows already built into features (their ids given), as :meth:`explain` does."""
         contrib = self.engine.contributions(matrix.values)
         probability = calibrate(self.bundle.manifest.calibration, contrib.raw)
         codes = self.catalogue.aggregate(contrib.values, matrix.values)
         reasons = self._reasons(codes, matrix.values)
         return Explanation(
-            ids=_ids(table, self.bundle.spec.id),
+            ids=ids,
             features=matrix,
             contributions=contrib,
             probability=probability,
@@ -85,8 +89,9 @@ class Explainer:
 
     def _reasons(self, codes: np.ndarray, values: np.ndarray) -> list[list[Reason]]:
         ranked = self.catalogue.rank(codes, self.top_k, self.min_contribution)
-        return [[self.catalogue.reason(code, value, values[row]) for code, value in events]
-                for row, events in enumerate(ranked)]
+        reason = self.catalogue.reason
+        return [[reason(code, value, row) for code, value in events]
+                for row, events in zip(values.tolist(), ranked, strict=True)]
 
     def _warnings(self, matrix: FeatureMatrix) -> list[list[str]]:
         """Per row: cell problems, missing values, and values outside the training range."""

@@ -8,8 +8,9 @@ table, batch jobs report the rows, the HTTP layer answers 422.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -65,6 +66,8 @@ class FeatureBuilder:
         self._derived_positions = [i for i, f in enumerate(self.features) if f.derived]
         self._names = [f.name for f in self.features]
         self._sources = [f.name if f.derived else f.source_column for f in self.features]
+        self._numeric_sources = [self._sources[p] for p in self._numeric_positions]
+        self._categorical_sources = [self._sources[p] for p in self._categorical_positions]
         self._required_positions = [i for i, f in enumerate(self.features) if not f.allow_missing]
         self._codes = {
             name: {value: code for code, value in enumerate(values)}
@@ -95,8 +98,7 @@ class FeatureBuilder:
     def transform(self, table: Table) -> FeatureMatrix:
         """Build the feature matrix; raises :class:`DataError` only for missing columns.
 
-        ``table`` is a DataFrame, or a mapping of column name to equal-length arrays (the HTTP
-        layer's cheaper form for a few events).
+        ``table`` is a DataFrame, or a mapping of column name to equal-length arrays.
         """
         missing = [column for column in self._required_columns if column not in table]
         if missing:
@@ -112,8 +114,43 @@ class FeatureBuilder:
         else:
             for position, column in zip(numeric, columns, strict=True):
                 out[:, position] = _to_float(self._names[position], column, problems)
-        for position in self._categorical_positions:
-            column = column_values(table, self._sources[position], text=True)
+        texts = [column_values(table, self._sources[p], text=True)
+                 for p in self._categorical_positions]
+        return self._finish(out, texts, table, problems)
+
+    def transform_records(self, records: Sequence[Mapping[str, Any]]) -> FeatureMatrix:
+        """:meth:`transform` of the table these records make, for the few events of a request.
+
+        Each record holds every required column, as JSON gives them. Where the numeric fields
+        hold only numbers and nulls (what the HTTP checks let through) the matrix is built from
+        them in one go; building the columns first cost more than the features themselves.
+        Anything else takes the way through columns, so the answer is always ``transform``'s.
+        """
+        columns = _RecordColumns(records, self._required_columns)
+        rows = len(records)
+        try:
+            numbers = [record[name] for record in records for name in self._numeric_sources]
+            texts = [[None if (value := record[name]) is None else str(value)
+                      for record in records] for name in self._categorical_sources]
+            if not set(map(type, numbers)) <= _NUMBER_TYPES:
+                raise TypeError("not only numbers")
+            block = np.array(numbers, dtype=np.float64).reshape(rows, len(self._numeric_sources))
+        except (KeyError, TypeError, OverflowError):
+            # A missing column, text where a number belongs, an integer past float64's range:
+            # the columns' way names or reads them.
+            return self.transform(columns)
+        out = np.empty((rows, len(self.features)), dtype=np.float64)
+        out[:, self._numeric_positions] = block
+        return self._finish(out, texts, columns, [])
+
+    def _finish(
+        self, out: np.ndarray, texts: Sequence[Sequence[Any]], table: Table,
+        problems: list[RowProblem],
+    ) -> FeatureMatrix:
+        """Categories, infinity, derived features and missing values, after the raw numbers."""
+        rows = out.shape[0]
+        numeric = self._numeric_positions
+        for position, column in zip(self._categorical_positions, texts, strict=True):
             out[:, position] = self._encode(self.features[position], column, problems)
         # One pass over every raw number: infinity is a problem, scored as missing.
         infinite = np.isinf(out[:, numeric])
@@ -144,7 +181,7 @@ class FeatureBuilder:
         return FeatureMatrix(out, self.names, problems)
 
     def _encode(
-        self, feature: FeatureSpec, values: np.ndarray, problems: list[RowProblem]
+        self, feature: FeatureSpec, values: Sequence[Any], problems: list[RowProblem]
     ) -> np.ndarray:
         lookup = self._codes[feature.name]
         codes: list[float] = []
@@ -164,6 +201,7 @@ class FeatureBuilder:
 
 
 Table = pd.DataFrame | Mapping[str, np.ndarray]
+_NUMBER_TYPES = {int, float, type(None)}
 
 
 def table_rows(table: Table) -> int:
@@ -187,6 +225,34 @@ def column_values(table: Table, name: str, text: bool = False) -> np.ndarray:
     if pd.api.types.is_numeric_dtype(column.dtype) or pd.api.types.is_bool_dtype(column.dtype):
         return column.to_numpy(dtype=np.float64, na_value=np.nan)
     return column.to_numpy(dtype=object, na_value=None)
+
+
+class _RecordColumns(Mapping[str, np.ndarray]):
+    """Records as columns, each made when first read: numbers and nulls as float64 (null is
+    NaN), other columns as objects, as a table of the records would hold them."""
+
+    def __init__(self, records: Sequence[Mapping[str, Any]], names: Sequence[str]) -> None:
+        self._records = records
+        self._names = list(names)
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        if name not in self._names:
+            raise KeyError(name)
+        values = [record[name] for record in self._records]
+        if set(map(type, values)) <= _NUMBER_TYPES:
+            try:
+                return np.array(values, dtype=np.float64)
+            except OverflowError:
+                pass
+        out = np.empty(len(values), dtype=object)
+        out[:] = values
+        return out
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._names)
+
+    def __len__(self) -> int:
+        return len(self._names)
 
 
 class _ColumnView(Mapping[str, np.ndarray]):

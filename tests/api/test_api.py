@@ -848,14 +848,14 @@ def test_request_in_flight_finishes_on_the_bundle_it_started_with(
     client = make_client(bundle=live, admin_without_keys=True)
     model, _ = client.app.state.service.current.pick(None)
     started, release = threading.Event(), threading.Event()
-    explain = model.explainer.explain
+    explain = model.explainer.explain_features
 
-    def slow(table: pd.DataFrame) -> Any:
+    def slow(matrix: Any, ids: list[str]) -> Any:
         started.set()
         release.wait(60)
-        return explain(table)
+        return explain(matrix, ids)
 
-    model.explainer.explain = slow
+    model.explainer.explain_features = slow
     answer: list[httpx.Response] = []
     # More events than are explained on the event loop itself (INLINE_ROWS), so the slow
     # explanation runs on a thread and the loop stays free to take the reload meanwhile.

@@ -19,7 +19,13 @@ from causeline.service.api.bodies import ScoreRequest, ScoreResponse, TimelineSc
 from causeline.service.api.dependencies import check_key, service_of
 from causeline.service.api.jsonio import FastJSONResponse
 from causeline.service.api.problems import FieldError, Problem
-from causeline.service.api.reading import all_contributions, openapi_request, read_body
+from causeline.service.api.reading import (
+    all_contributions,
+    openapi_request,
+    read_body,
+    read_events,
+)
+from causeline.service.api.state import Service
 from causeline.service.api.timeline import online_event
 
 router = APIRouter(tags=["scoring"])
@@ -34,10 +40,10 @@ _SECURITY = [bearer.scheme_name, api_key_header.scheme_name]
 @router.post(SCORE_PATH, openapi_extra=openapi_request(ScoreRequest, _SECURITY), **_SCORING)
 async def score(request: Request) -> Response:
     """Probability, decision and ranked reason codes for each event."""
-    check_key(request)
-    payload = await read_body(request, ScoreRequest)
-    return await _score(request, payload.model, payload.events, all_contributions(request),
-                        _wanted(request))
+    service = service_of(request)
+    check_key(request, service)
+    name, events = await read_events(request)
+    return await _score(service, name, events, all_contributions(request), _wanted(request))
 
 
 @router.post("/v1/score/timeline", response_model=ScoreResponse,
@@ -47,14 +53,15 @@ async def score_timeline(request: Request) -> Response:
     """Score one entity from its raw logs, now (its latest reading or failure) or at ``at``:
     the snapshot is built by the batch build's code. An entity that is down then (a failure
     it has not come back from, by the config's down rules) is refused with 409."""
-    check_key(request)
+    service = service_of(request)
+    check_key(request, service)
     payload = await read_body(request, TimelineScoreRequest)
     flag = all_contributions(request)
-    current = service_of(request).current
+    current = service.current
     assert current is not None
     model, schema = current.pick(payload.model)
     event = await run_in_threadpool(online_event, model.bundle, payload, schema.reject_unknown)
-    return await _score(request, payload.model, [event], flag, _wanted(request))
+    return await _score(service, payload.model, [event], flag, _wanted(request))
 
 
 def _wanted(request: Request) -> int | None:
@@ -65,11 +72,10 @@ def _wanted(request: Request) -> int | None:
 
 
 async def _score(
-    request: Request, name: str | None, events: list[dict[str, Any]], all_contributions: bool,
+    service: Service, name: str | None, events: list[dict[str, Any]], all_contributions: bool,
     what_to_change: int | None = None,
 ) -> Response:
     """The scoring both endpoints share: checks and batched explanation (which counts and logs)."""
-    service = service_of(request)
     current = service.current
     assert current is not None
     model, schema = current.pick(name)
@@ -91,7 +97,7 @@ async def _score(
         )
     results = scored.records
     if what_to_change is not None:
-        found = await run_in_threadpool(changes.records, model, schema, events, what_to_change,
+        found = await run_in_threadpool(changes.records, model, events, what_to_change,
                                         current.finders)
         results = [{**result, "what_to_change": record}
                    for result, record in zip(results, found, strict=True)]
