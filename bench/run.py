@@ -9,7 +9,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 BENCHMARKS = ["explain.py", "actions.py", "serving.py", "load.py", "fastshap.py", "timeline.py",
-              "rootcause.py", "grouping.py", "effect.py",
+              "rootcause.py", "fitsample.py", "grouping.py", "effect.py",
               "drift.py"]
 
 

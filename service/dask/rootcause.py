@@ -187,12 +187,14 @@ def _summary_of(selected: _Selected) -> _Summary:
     return selected.summary
 
 
-def _label_part(selected: _Selected, profiles: np.ndarray, bundle_path: str) -> EventSlice:
-    """On a worker: every event of the partition placed by the nearest profile."""
+def _label_part(selected: _Selected, profiles: np.ndarray, held: np.ndarray, bundle_path: str
+                ) -> EventSlice:
+    """On a worker: every event of the partition placed by the nearest profile (ungrouped when
+    that is a held one, of no clear cause)."""
     part = selected.events
     causes = worker_explainer(bundle_path).catalogue.causes
     mix, has_cause = cause_mix(part.explanation.code_contributions, causes)
-    labels, strength = assign(mix, has_cause, profiles)
+    labels, strength = assign(mix, has_cause, profiles, held)
     return replace(part, labels=labels, strength=strength)
 
 
@@ -260,7 +262,8 @@ def run_rootcause_dask(
             mixes.rows[:, :-1], mixes.keys, with_cause, mixes.rows[:, -1])
         parameters = {"engine": "dask", **finder.parameters(mixes.keys.size, sample_size)}
         labelled = [
-            client.compute(dask.delayed(_label_part)(future, finder.profiles_, bundle_path))
+            client.compute(dask.delayed(_label_part)(
+                future, finder.profiles_, finder.held_, bundle_path))
             for future in selected
         ]
         del selected  # the labelled slices replace them on the workers
