@@ -90,7 +90,7 @@ class StackedDiD:
             (parts.ravel(), (np.repeat(stack.entity, 2 * width), column.ravel())),
             shape=(stack.entities, groups * 2 * width))
         ones = np.ones((1, stack.entities))
-        point = _did(_sums(matrix, ones, groups, width), stack.window)
+        point = _did(_sums(matrix, ones, groups, width), stack.window, weekly_rates=True)
         rng = np.random.default_rng(self.seed)
         draws = []
         for start in range(0, self.bootstrap, 200):
@@ -148,7 +148,10 @@ def _rate(sums: np.ndarray, weeks: slice) -> np.ndarray:
         return np.where(days > 0, PER * events / days, np.nan)
 
 
-def _did(sums: np.ndarray, window: Window) -> dict[str, np.ndarray]:
+def _did(sums: np.ndarray, window: Window, weekly_rates: bool = False
+         ) -> dict[str, np.ndarray]:
+    """The estimate per replicate; ``weekly_rates`` adds the pooled rates per week (the
+    plot's, wanted for the point estimate only, not for every bootstrap replicate)."""
     treated, comparison = sums[:, 1::2], sums[:, 0::2]
     before, after = slice(0, window.before), slice(window.before + 1, window.width)
     t_before, t_after = _rate(treated, before), _rate(treated, after)
@@ -172,12 +175,15 @@ def _did(sums: np.ndarray, window: Window) -> dict[str, np.ndarray]:
                          for w in range(rates.shape[-1])], axis=1)
 
     gaps = by_week(weekly[:, 1::2, :window.before] - weekly[:, 0::2, :window.before])
-    return {"effect": np.where(total > 0, mean(change), np.nan),
-            "treated_before": mean(t_before), "treated_after": mean(t_after),
-            "comparison_before": mean(c_before), "comparison_after": mean(c_after),
-            "pretrend": _slope(gaps) * ((window.before + window.after) / 2 + 1),
-            "treated_weekly": by_week(weekly[:, 1::2]),
-            "comparison_weekly": by_week(weekly[:, 0::2]), "weights": weights}
+    out = {"effect": np.where(total > 0, mean(change), np.nan),
+           "treated_before": mean(t_before), "treated_after": mean(t_after),
+           "comparison_before": mean(c_before), "comparison_after": mean(c_after),
+           "pretrend": _slope(gaps) * ((window.before + window.after) / 2 + 1),
+           "weights": weights}
+    if weekly_rates:
+        out["treated_weekly"] = by_week(weekly[:, 1::2])
+        out["comparison_weekly"] = by_week(weekly[:, 0::2])
+    return out
 
 
 def _slope(gaps: np.ndarray) -> np.ndarray:
