@@ -23,6 +23,7 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import Any
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
@@ -74,7 +75,7 @@ def explained(domain: str, rows: int, seed: int, folder: Path) -> dict[str, np.n
         return {name: stored[name] for name in ("mix", "has", "lift", "keys")}
 
 
-def grouped(data: dict[str, np.ndarray], sample: int | None) -> tuple[np.ndarray, object, float]:
+def grouped(data: dict[str, np.ndarray], sample: int | None) -> tuple[np.ndarray, Any, float]:
     """Every event's group when the profiles are found on ``sample`` events (None: all)."""
     from causeline.service.rootcause.grouping import GroupFinder, bottom
 
@@ -106,12 +107,14 @@ def main(argv: list[str] | None = None) -> int:
         report(f"{name}_seed_{seed}_full_fit_s", took)
         report(f"{name}_seed_{seed}_full_fit_groups", int(finder.profiles_.shape[0]))
         report(f"{name}_seed_{seed}_full_fit_rounds", int(finder.rounds_))
+        report(f"{name}_seed_{seed}_full_fit_fringes_parted", int(finder.splits_))
         report(f"{name}_seed_{seed}_full_fit_ungrouped_share", float(np.mean(full < 0)))
         for sample in args.samples:
-            labels, _, took = grouped(data, sample)
+            labels, fitted, took = grouped(data, sample)
             ari = float(adjusted_rand_score(full, labels))
             worst[sample] = min(worst.get(sample, 1.0), ari)
             report(f"{name}_seed_{seed}_sample_{sample}_fit_s", took)
+            report(f"{name}_seed_{seed}_sample_{sample}_fringes_parted", int(fitted.splits_))
             report(f"{name}_seed_{seed}_sample_{sample}_ari_vs_full_fit", ari)
     for sample, ari in worst.items():
         report(f"{name}_sample_{sample}_ari_vs_full_fit_worst_seed", ari)

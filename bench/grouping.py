@@ -10,6 +10,7 @@ once with the bundle trained on it.
 
     python bench/grouping.py                           # make bench: 3 seeds x 3 sizes
     python bench/grouping.py --seeds 5 --sizes 0.1 1 14  # up to about 50,000 events
+    python bench/grouping.py --first-seed 301            # other fresh seeds than 101-103
 """
 
 from __future__ import annotations
@@ -38,6 +39,7 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seeds", type=int, default=3, help="fresh seeds per size")
     parser.add_argument("--sizes", type=float, nargs="+", default=[0.1, 1.0, 4.0])
+    parser.add_argument("--first-seed", type=int, default=101, help="first of the fresh seeds")
     parser.add_argument("--scenarios", nargs="+", default=list(TRAIN_SEEDS))
     args = parser.parse_args(argv)
     from fixtures.scenarios import grouped, trained
@@ -54,7 +56,7 @@ def main(argv: list[str] | None = None) -> int:
             for size in args.sizes:
                 per_size: list[float] = []
                 events = 0
-                for seed in range(101, 101 + args.seeds):
+                for seed in range(args.first_seed, args.first_seed + args.seeds):
                     scores = grouped(name, bundle, seed, size * SCALE[name], folder)
                     per_size.append(scores.ari)
                     ungrouped.append(scores.ungrouped)

@@ -11,7 +11,7 @@ of its score. An event with no positive cause contribution has no cause to share
 ungrouped.
 
 Groups. Distances between mixes are total variation, half the L1 distance: the share of the mix
-two events do *not* have in common. Groups are found in three steps:
+two events do *not* have in common. Groups are found in four steps:
 
 1. candidates: HDBSCAN (Campello, Moulavi & Sander 2013; the ``hdbscan`` library of McInnes,
    Healy & Astels 2017) on the mixes of at most :data:`FIT_SAMPLE` events, so the number of
@@ -29,7 +29,13 @@ two events do *not* have in common. Groups are found in three steps:
    by half (:data:`MIN_LIFT`) is no cause: the model saw little that raised those events' risk,
    and a group would be named after noise. Such a profile is *held*: it keeps its events, which
    stay ungrouped, rather than handing them to the nearest cause. An event is left ungrouped
-   when its mix matches no profile that far, its nearest profile is held, or it has no cause.
+   when its mix matches no profile that far, its nearest profile is held, or it has no cause;
+4. a fringe parted: each cause's members are split in two (two-means by the same distance,
+   as a step of bisecting k-means) and refined again; the split is kept only when the parts
+   stay apart and one of them is held, so a cause is parted from a fringe of events of no
+   clear cause that its starting candidate had taken in, and never split into two causes.
+   Whether HDBSCAN offers such a fringe as a candidate of its own depends on the sample; this
+   step finds such a fringe when two-means does (not always: docs/scaling.md).
 
 Why held profiles and rounds to a fixed point: where most events have no clear cause (every
 run of a machine taken as an event, say), their mixes fill the space between the causes. When
@@ -38,8 +44,10 @@ swallowed real causes and were dissolved in turn, round after round; the profile
 settled, and a fixed number of rounds froze one moment of that drift. On 10^6 AI4I-style
 events, one round more or less moved the groups of a fit on every event to ARI 0.81 against
 themselves, and a fit on a 20,000-event sample agreed with it at ARI 0.92. Holding no-cause
-profiles and refining to a fixed point, the two fits agreed at ARI 0.972-0.997 over three seeds
-(docs/scaling.md, with what is not settled: the display-case fleet at 2 x 10^5 reached 0.94).
+profiles and refining to a fixed point, the two fits agreed at ARI 0.972-0.997 over three seeds,
+and with step 4 at 0.974-0.997; on the display-case fleet (2 x 10^5 events) at 0.942-0.945,
+and with step 4 at 0.942-0.999: the fits can settle on different fixed points, one of them
+parting a fringe from a cause that the other joins to it (docs/scaling.md).
 
 Profiles are found on a sample drawn by a hash of the event ids and read in that hash's order,
 so the same events give the same groups in any row order, and both engines fit the same
@@ -74,6 +82,8 @@ REFINE_ROUNDS = 100
 # be named after noise (groups of unexplained events measured 0.06-0.25; weak genuine causes,
 # door traffic seen through a daily mean, 0.6). Such events stay ungrouped: no clear cause.
 MIN_LIFT = float(np.log(1.5))
+# Bisecting steps after the first refining, at most.
+MAX_SPLITS = 10
 # A sampled fit never asks HDBSCAN for groups smaller than this.
 SAMPLED_MIN_GROUP = 5
 # A code is a leading code of a group when it holds at least this share of the group's mix.
@@ -171,9 +181,10 @@ class GroupFinder:
     is part of a larger run, the number of events with a cause in all of it (the smallest group
     follows that number).
     Fitted: ``profiles_`` (groups x codes), ``held_`` (profiles of no clear cause, whose nearest
-    events stay ungrouped), ``rounds_`` (refining rounds run), ``min_group_size_`` (for all
-    events), ``sample_min_group_``, ``min_samples_``, and ``candidate_labels_`` (HDBSCAN's
-    cluster of each fitted row, -1 for noise) with their number ``candidates_``.
+    events stay ungrouped), ``rounds_`` (refining rounds run), ``splits_`` (fringes parted in
+    step 4), ``min_group_size_`` (for all events), ``sample_min_group_``, ``min_samples_``,
+    and ``candidate_labels_`` (HDBSCAN's cluster of each fitted row, -1 for noise) with their
+    number ``candidates_``.
     """
 
     def __init__(self, min_group_size: int | None = None, min_samples: int = MIN_SAMPLES) -> None:
@@ -196,7 +207,7 @@ class GroupFinder:
         self.min_samples_ = int(min(self.min_samples, size))
         self.profiles_ = np.zeros((0, mix.shape[1]))
         self.held_ = np.zeros((0, mix.shape[1]))
-        self.rounds_ = 0
+        self.rounds_ = self.splits_ = 0
         if n <= size:
             return self  # too few events for even one group: all are ungrouped
         # The hash order, ties by mix: the same events always reach HDBSCAN in the same order.
@@ -222,24 +233,11 @@ class GroupFinder:
                 len(codes), mix.shape[1])
             counts = np.array([int((top == c).sum()) for c in codes])
         profiles, counts = _merged(profiles, counts)
-        everyone = np.ones(n, dtype=bool)
-        self.rounds_ = 0
-        for self.rounds_ in range(1, REFINE_ROUNDS + 1):
-            labels, _ = assign(mix, everyone, profiles)
-            counts = np.bincount(labels[labels >= 0], minlength=profiles.shape[0])
-            keep = np.flatnonzero(counts >= size)
-            refined, _ = _merged(_means(mix, labels, profiles.shape[0])[keep], counts[keep])
-            settled = refined.shape == profiles.shape and np.allclose(refined, profiles, atol=1e-9)
-            profiles = refined
-            if settled:
-                break
-        labels, _ = assign(mix, everyone, profiles)
-        counts = np.bincount(labels[labels >= 0], minlength=profiles.shape[0])
-        lifted = np.bincount(labels[labels >= 0], weights=lift[labels >= 0],
-                             minlength=profiles.shape[0]) / np.maximum(counts, 1)
-        kept = counts >= size
-        self.profiles_ = profiles[kept & (lifted >= MIN_LIFT)]
-        self.held_ = profiles[kept & (lifted < MIN_LIFT)]
+        profiles, self.rounds_ = _refined(mix, profiles, size)
+        profiles, self.splits_ = _bisected(mix, lift, profiles, size)
+        kept, clear = _judged(mix, lift, profiles, size)
+        self.profiles_ = profiles[kept & clear]
+        self.held_ = profiles[kept & ~clear]
         return self
 
     def assign(self, mix: np.ndarray, has_cause: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -256,6 +254,7 @@ class GroupFinder:
             "sample_min_group_size": self.sample_min_group_,
             "candidates": self.candidates_, "groups": int(self.profiles_.shape[0]),
             "held_profiles": int(self.held_.shape[0]), "refining_rounds": self.rounds_,
+            "fringes_parted": self.splits_,
             "merge_distance": MERGE_DISTANCE, "assign_distance": ASSIGN_DISTANCE,
         }
 
@@ -265,6 +264,83 @@ def bottom(keys: np.ndarray, k: int = FIT_SAMPLE) -> np.ndarray:
     if keys.size <= k:
         return np.arange(keys.size)
     return np.sort(np.argsort(keys, kind="stable")[:k])
+
+
+def _refined(mix: np.ndarray, profiles: np.ndarray, size: int) -> tuple[np.ndarray, int]:
+    """Profiles re-estimated as their members' mean mix until they stop moving (at most
+    :data:`REFINE_ROUNDS`), dropping those with fewer than ``size`` members and merging those
+    that come together; and the rounds run."""
+    everyone = np.ones(mix.shape[0], dtype=bool)
+    rounds = 0
+    while rounds < REFINE_ROUNDS:
+        rounds += 1
+        labels, _ = assign(mix, everyone, profiles)
+        counts = np.bincount(labels[labels >= 0], minlength=profiles.shape[0])
+        keep = np.flatnonzero(counts >= size)
+        refined, _ = _merged(_means(mix, labels, profiles.shape[0])[keep], counts[keep])
+        settled = refined.shape == profiles.shape and np.allclose(refined, profiles, atol=1e-9)
+        profiles = refined
+        if settled:
+            break
+    return profiles, rounds
+
+
+def _judged(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int
+            ) -> tuple[np.ndarray, np.ndarray]:
+    """Per profile: whether it has at least ``size`` members, and whether it is a clear cause
+    (its members' mean lift at least :data:`MIN_LIFT`); not clear: held."""
+    labels, _ = assign(mix, np.ones(mix.shape[0], dtype=bool), profiles)
+    inside = labels >= 0
+    counts = np.bincount(labels[inside], minlength=profiles.shape[0])
+    lifted = np.bincount(labels[inside], weights=lift[inside],
+                         minlength=profiles.shape[0]) / np.maximum(counts, 1)
+    return counts >= size, lifted >= MIN_LIFT
+
+
+def _bisected(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int
+              ) -> tuple[np.ndarray, int]:
+    """Profiles after trying to split each cause in two (a bisecting step, as in bisecting
+    k-means), and the splits kept. A split is kept only when refining keeps the two parts
+    apart and it adds a held profile, not a cause: it parts a cause from a fringe of events of
+    no clear cause that the starting candidates had joined to it. A cause is never split into
+    two causes (that is what merging undoes)."""
+    splits, k = 0, 0
+    kept, clear = _judged(mix, lift, profiles, size)
+    while k < profiles.shape[0] and splits < MAX_SPLITS:
+        labels, _ = assign(mix, np.ones(mix.shape[0], dtype=bool), profiles)
+        members = mix[labels == k]
+        if clear[k] and members.shape[0] >= 2 * size:
+            halves, counts = _halves(members)
+            if counts.min() >= size:
+                trial = np.vstack([np.delete(profiles, k, axis=0), halves])
+                refined, _ = _refined(mix, trial, size)
+                now_kept, now_clear = _judged(mix, lift, refined, size)
+                if (now_kept & ~now_clear).sum() > (kept & ~clear).sum() and \
+                        (now_kept & now_clear).sum() <= (kept & clear).sum():
+                    profiles, kept, clear = refined, now_kept, now_clear
+                    splits, k = splits + 1, 0
+                    continue
+        k += 1
+    return profiles, splits
+
+
+def _halves(members: np.ndarray, rounds: int = 30) -> tuple[np.ndarray, np.ndarray]:
+    """Two-means of ``members`` by total variation distance, seeded by the member farthest
+    from their mean and the member farthest from that one: the two means and their counts."""
+    first = members[distances(members, members.mean(axis=0)[None])[:, 0].argmax()]
+    second = members[distances(members, first[None])[:, 0].argmax()]
+    centres = np.vstack([first, second])
+    side = np.zeros(members.shape[0], dtype=np.int64)
+    for _ in range(rounds):
+        side = distances(members, centres).argmin(axis=1)
+        if side.min() == side.max():
+            break
+        moved = _means(members, side, 2)
+        if np.allclose(moved, centres, atol=1e-9):
+            break
+        centres = moved
+    counts = np.bincount(side, minlength=2)
+    return centres, counts
 
 
 def _means(mix: np.ndarray, labels: np.ndarray, groups: int) -> np.ndarray:
