@@ -224,13 +224,15 @@ class Calibration:
 
 
 def calibration_checks(p: np.ndarray, y: np.ndarray, card: Mapping[str, object],
-                       bins: int = 10, replicates: int = 200, seed: int = 0) -> Calibration:
+                       bins: int = 10, replicates: int = 200, seed: int = 0,
+                       units: np.ndarray | None = None) -> Calibration:
     """Observed event rate against mean predicted probability per decile of the prediction,
-    Brier score and ROC AUC with Poisson-bootstrap intervals, against the model card's."""
+    Brier score and ROC AUC with Poisson-bootstrap intervals, against the model card's;
+    ``units`` (each event's entity) makes the bootstrap draw whole entities."""
     ranked = RankedScores(p, y)
     nbins = int(min(bins, p.size))
     binned = quantile_bins(p, nbins)
-    auc, brier, rates = bootstrap(ranked, binned, nbins, replicates, seed)
+    auc, brier, rates = bootstrap(ranked, binned, nbins, replicates, seed, units=units)
     counts = np.bincount(binned, minlength=nbins)
     predicted = np.bincount(binned, weights=p, minlength=nbins) / np.maximum(counts, 1)
     table = pd.DataFrame({
@@ -274,6 +276,7 @@ def calibration_checks(p: np.ndarray, y: np.ndarray, card: Mapping[str, object],
         "card_roc_auc": card_auc, "card_brier": card_brier,
         "observed_rate": observed, "mean_predicted": expected,
         "bootstrap_replicates": replicates,
+        "bootstrap_draws": "events" if units is None else "entities",
     }
     return Calibration(table, findings, summary)
 

@@ -101,14 +101,17 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
         raise DataError("give outcomes once: --label COLUMN or --failures LOG, not both")
     outcomes = None if options.failures is None else FailureOutcomes.of(spec, options.failures)
     entities: set[str] = set()
+    holders: list[np.ndarray] = []  # per labelled event, its entity (the bootstrap's unit)
     progress.step("reading and scoring the window")
     for frame in chunks(bundle, source, text):
         matrix = bundle.builder.transform(frame)
         unseen = {f.name: _unseen(frame[f.source_column], bundle.builder.categories[f.name])
                   for f in categorical}
         features.add(matrix.values, unseen)
+        holder = None
         if spec.entity is not None and spec.entity in frame.columns:
-            entities.update(frame[spec.entity].dropna().astype(str).unique())
+            holder = frame[spec.entity].astype(str).where(frame[spec.entity].notna(), None)
+            entities.update(holder.dropna().unique())
         if sample is None:
             scored = scorer.score(matrix.values)
             codes.add(scored)
@@ -125,6 +128,8 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
         if outcomes is not None:
             outcomes.add(frame)
             labelled.append((probability, np.empty(0)))
+        if labelled and holder is not None:
+            holders.append(holder.to_numpy(dtype=object))
         progress(f"{features.rows} events checked")
     if features.rows == 0:
         window = "" if source.since is None and source.until is None else " in the window"
@@ -144,11 +149,14 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
     calibration, told = None, None
     if labelled:
         p = np.concatenate([pair[0] for pair in labelled])
+        # Events of one entity are drawn together; without an entity on every event, alone.
+        units = _units(holders) if len(holders) == len(labelled) else None
         if outcomes is not None:
             progress.step("joining outcomes from the failure log")
             y, told = outcomes.labels(options.failures)  # type: ignore[arg-type]
             known = ~np.isnan(y)
             p, y = p[known], y[known]
+            units = None if units is None else units[known]
         else:
             y = np.concatenate([pair[1] for pair in labelled]).astype(float)
             told = {"source": "label column", "column": options.label}
@@ -157,7 +165,8 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
         if 0 < y.sum() < y.size:
             progress.step("bootstrapping calibration")
             calibration = checks.calibration_checks(
-                p, y, bundle.manifest.metrics, replicates=options.replicates, seed=options.seed)
+                p, y, bundle.manifest.metrics, replicates=options.replicates, seed=options.seed,
+                units=units)
             findings += calibration.findings
     decided = checks.verdict(findings)
     tables = _tables(findings, decided.alpha, features, scores, part, calibration)
@@ -180,6 +189,14 @@ def run_drift(bundle: Bundle, input_path: Path, out: Path | None, options: Drift
         _write(out, result, caution)
         result.folder = Path(out)
     return result
+
+
+def _units(holders: list[np.ndarray]) -> np.ndarray:
+    """Each labelled event's bootstrap unit: its entity, or itself when it names none."""
+    units = np.concatenate(holders)
+    alone = np.flatnonzero(pd.isna(units))
+    units[alone] = [f"\x00{position}" for position in alone]
+    return units
 
 
 def _unseen(column: pd.Series, categories: list[str]) -> Counter[str]:

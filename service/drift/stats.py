@@ -114,6 +114,13 @@ class RankedScores:
         return float(np.sum(w * (self.p - self.y) ** 2) / np.sum(w))
 
 
+def _unit_codes(units: np.ndarray) -> tuple[np.ndarray, int]:
+    """Each event's unit numbered 0 .. k-1, and k."""
+    _, codes = np.unique(np.asarray(units), return_inverse=True)
+    codes = codes.reshape(-1)
+    return codes, int(codes.max(initial=-1)) + 1
+
+
 @dataclass(frozen=True)
 class Interval:
     estimate: float
@@ -126,26 +133,41 @@ BOOTSTRAP_ROWS = 200_000
 
 def bootstrap(
     ranked: RankedScores, bins: np.ndarray, nbins: int, replicates: int = 200, seed: int = 0,
-    level: float = 0.95,
+    level: float = 0.95, units: np.ndarray | None = None,
 ) -> tuple[Interval, Interval, list[Interval]]:
     """Percentile intervals of ROC AUC, Brier score and each bin's observed event rate.
 
-    Past ``BOOTSTRAP_ROWS`` events the replicates are drawn from a random subset of that size
-    and their spread around the subset's estimate is scaled by ``sqrt(subset / all)`` and
-    centred on the estimate from every event (the spread of these smooth statistics shrinks
-    as one over the square root of the count)."""
+    ``units``: per event, a whole number naming the unit it is drawn with (its entity: a
+    case's events share its traits and its troubles, so they are not independent); each
+    replicate draws every unit ``Poisson(1)`` times with all its events, a cluster bootstrap
+    (Cameron, Gelbach & Miller 2008, REStat 90(3)). None: each event is its own unit.
+
+    Past ``BOOTSTRAP_ROWS`` events the replicates are drawn from a random subset of the units
+    holding about that many events, and their spread around the subset's estimate is scaled
+    by ``sqrt(subset units / all units)`` and centred on the estimate from every event (the
+    spread of these smooth statistics shrinks as one over the square root of the count)."""
     rng = np.random.default_rng(seed)
     full, full_bins = ranked, bins
     scale = 1.0
-    if ranked.y.size > BOOTSTRAP_ROWS:
-        subset = rng.choice(ranked.y.size, BOOTSTRAP_ROWS, replace=False)
-        scale = float(np.sqrt(BOOTSTRAP_ROWS / ranked.y.size))
+    size = ranked.y.size
+    codes, count = (np.arange(size), size) if units is None else _unit_codes(units)
+    if size > BOOTSTRAP_ROWS:
+        if units is None:
+            subset = rng.choice(size, BOOTSTRAP_ROWS, replace=False)
+            codes, kept = np.arange(BOOTSTRAP_ROWS), BOOTSTRAP_ROWS
+        else:
+            kept = max(1, int(np.ceil(count * BOOTSTRAP_ROWS / size)))
+            chosen = np.zeros(count, dtype=bool)
+            chosen[rng.choice(count, kept, replace=False)] = True
+            subset = np.flatnonzero(chosen[codes])
+            codes, kept = _unit_codes(codes[subset])
+        scale = float(np.sqrt(kept / count))
+        count = kept
         ranked, bins = RankedScores(ranked.p[subset], ranked.y[subset]), bins[subset]
-    n = ranked.y.size
     aucs, briers = np.empty(replicates), np.empty(replicates)
     rates = np.empty((replicates, nbins))
     for r in range(replicates):
-        w = rng.poisson(1.0, n).astype(float)
+        w = rng.poisson(1.0, count).astype(float)[codes]
         aucs[r], briers[r] = ranked.auc(w), ranked.brier(w)
         events = np.bincount(bins, weights=w * ranked.y, minlength=nbins)
         counts = np.bincount(bins, weights=w, minlength=nbins)

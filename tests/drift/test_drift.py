@@ -54,6 +54,8 @@ def test_an_unchanged_fleet_is_ok(demo_bundle: Bundle, window) -> None:  # type:
                        DriftOptions(label=LABEL, replicates=50, code_sample=SAMPLE))
     assert result.verdict.level == "ok", result.verdict.decided_by
     assert result.summary["calibration"]["rows"] == 80 * 365
+    # The demo spec names case_id as its entity: the bootstrap draws cases whole.
+    assert result.summary["calibration"]["bootstrap_draws"] == "entities"
     assert result.summary["codes"]["events_explained"] == SAMPLE
     assert result.summary["codes"]["sampled"]
 

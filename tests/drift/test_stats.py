@@ -152,3 +152,58 @@ def test_serial_factor_in_chunks_and_the_spread_of_a_mean_of_an_autoregression()
     independent.add(rng.normal(size=(n, 2)))
     assert (independent.factor() > 0.4).all()
     assert Units(window=80).at(0.01).n(29_200) == 80  # the entities rule is left as it is
+
+
+def test_one_unit_per_event_draws_as_the_event_bootstrap() -> None:
+    # Units that are each one event, named in the events' order, are the event bootstrap
+    # itself: same seed, same draws.
+    rng = np.random.default_rng(11)
+    p = rng.uniform(size=3000)
+    y = (rng.uniform(size=3000) < p).astype(float)
+    bins = quantile_bins(p)
+    alone = bootstrap(RankedScores(p, y), bins, 10, replicates=50, seed=3)
+    units = bootstrap(RankedScores(p, y), bins, 10, replicates=50, seed=3,
+                      units=np.arange(3000) * 7 + 5)
+    assert alone[1] == units[1] and alone[0] == units[0]
+
+
+def _clustered(rng: np.random.Generator, entities: int, each: int
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Events of entities whose risk differs: the model's probability misses each entity's
+    own factor, so an entity's events err together."""
+    units = np.repeat(np.arange(entities), each)
+    p = rng.uniform(0.02, 0.3, units.size)
+    own = rng.lognormal(0.0, 0.8, entities)[units]
+    y = (rng.uniform(size=units.size) < np.minimum(p * own, 1.0)).astype(float)
+    return p, y, units
+
+
+def test_drawing_entities_gives_the_cluster_robust_spread_of_the_brier_score() -> None:
+    # The Brier score is a mean of (p - y)^2 over events; its cluster-robust variance (the
+    # sandwich formula of Cameron & Miller 2015, J. Human Resources 50(2), without small-sample
+    # factor) is sum over entities of (sum of their deviations)^2 / n^2. 95 % of a percentile
+    # interval spans about 3.92 standard errors; drawing events alone spans far less here.
+    rng = np.random.default_rng(12)
+    p, y, units = _clustered(rng, 150, 40)
+    d = (p - y) ** 2 - np.mean((p - y) ** 2)
+    se = math.sqrt(np.sum(np.bincount(units, weights=d) ** 2)) / d.size
+    naive = math.sqrt(np.sum(d ** 2)) / d.size
+    bins = quantile_bins(p)
+    _, brier, _ = bootstrap(RankedScores(p, y), bins, 10, replicates=400, seed=4, units=units)
+    _, alone, _ = bootstrap(RankedScores(p, y), bins, 10, replicates=400, seed=4)
+    assert se > 1.3 * naive  # the draw is clustered enough for the check to tell
+    assert 0.8 * 3.92 * se < brier.high - brier.low < 1.2 * 3.92 * se
+    assert alone.high - alone.low < 0.85 * 3.92 * se
+
+
+def test_a_large_window_draws_a_subset_of_entities_with_the_spread_scaled() -> None:
+    # Past the subset size the entities, not the events, are subsampled, and the spread is
+    # scaled by the entities' share: the interval stays about 3.92 cluster-robust errors wide.
+    rng = np.random.default_rng(13)
+    p, y, units = _clustered(rng, 6000, 50)
+    d = (p - y) ** 2 - np.mean((p - y) ** 2)
+    se = math.sqrt(np.sum(np.bincount(units, weights=d) ** 2)) / d.size
+    _, brier, _ = bootstrap(RankedScores(p, y), quantile_bins(p), 10, replicates=200, seed=5,
+                            units=units)
+    assert brier.estimate == pytest.approx(np.mean((p - y) ** 2), abs=1e-12)
+    assert 0.75 * 3.92 * se < brier.high - brier.low < 1.25 * 3.92 * se
