@@ -9,8 +9,10 @@ A catalogue code groups the features of one mechanism, e.g. days since the coil 
 (controllable) with the discharge pressure a dirty coil drives up (observable). Setting the
 controllable one alone would leave the model looking at the same high pressure and understate
 the fix, so observable numeric features that share a code with a fixed feature move with it:
-along the least-squares line fitted over the reference rows (a numeric setting) or by the
-difference of their means between the old and the new category (a categorical one). That is a
+along the least-squares line fitted over the training rows and kept in the bundle (a numeric
+setting that may change, the same line the what-to-change search uses), else over the
+reference rows, or by the difference of their means between the old and the new category (a
+categorical one). That is a
 linear, associational assumption, and it is why the number is labelled an estimate.
 
 Only codes whose fix carries targets count; a group driven by observable features alone has
@@ -119,13 +121,28 @@ def _follow(
     after: np.ndarray,
     reference: np.ndarray,
 ) -> None:
-    """Move observable co-drivers of each fixed feature along with it (in place on ``after``)."""
+    """Move observable co-drivers of each fixed feature along with it (in place on ``after``).
+
+    A numeric feature whose followers the bundle keeps (the training rows' slopes and range,
+    :mod:`~causeline.service.features.follow`) moves those, as the what-to-change search does,
+    so both answer the same what-if; other targets fit their co-drivers on ``reference``."""
     spec = bundle.spec
     names = spec.feature_names
     codes = {code.code: code for code in bundle.spec.reason_codes}
+    stats = bundle.manifest.stats
     for target in targets:
         fixed = names.index(target.feature)
         categorical = spec.feature(target.feature).kind == "categorical"
+        kept = None if categorical else stats[target.feature].follows
+        if kept is not None:
+            change = np.nan_to_num(after[:, fixed] - before[:, fixed])
+            for other, rate in kept.items():
+                column = names.index(other)
+                low, high = stats[other].minimum, stats[other].maximum
+                after[:, column] = np.clip(before[:, column] + rate * change,
+                                           -np.inf if low is None else low,
+                                           np.inf if high is None else high)
+            continue
         for other in codes[target.code].features:
             feature = spec.feature(other)
             if other == target.feature or feature.role != "observable" or feature.kind != "numeric":
