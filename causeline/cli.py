@@ -135,6 +135,10 @@ def _parser() -> argparse.ArgumentParser:
                         "whose entities share shocks (a store, a line): the bootstrap resamples "
                         "them together (default: the config's attributes.cluster_by, else each "
                         "entity alone)")
+    effect.add_argument("--compare-within", metavar="COLUMN", help="a column of the "
+                        "attributes (a store, a line): compare treated entities only with "
+                        "untreated ones of their own group (default: the config's "
+                        "attributes.compare_within, else the whole fleet)")
     effect.add_argument("--min-treated", type=int, default=10, help="fewest treated (and "
                         "comparison) entities for a number (default 10)")
     effect.add_argument("--seed", type=int, default=0, help="bootstrap seed (default 0)")
@@ -351,7 +355,8 @@ def _effect(args: argparse.Namespace) -> int:
     options = EffectOptions(
         before=args.weeks_before, after=args.weeks_after, bootstrap=args.bootstrap,
         level=args.level, seed=args.seed, min_treated=args.min_treated,
-        min_comparison=args.min_treated, cluster_by=args.cluster_by)
+        min_comparison=args.min_treated, cluster_by=args.cluster_by,
+        compare_within=args.compare_within)
     options.check()
     spec = load_config(args.config)
     bundle = load_bundle(args.bundle) if args.bundle is not None else None

@@ -12,6 +12,14 @@ window (never treated, or treated well before or after: "clean controls", Cengiz
 Lindner & Zipperer 2019, QJE 134(3); the same comparison as Callaway & Sant'Anna 2021's
 not-yet-treated group, within a fixed window). The action's own week belongs to neither side:
 it mixes days before and after the action.
+
+With a grouping of the entities (``compare_within``, say the store), a block is one week and
+one group: the treated of that week are compared only with untreated entities of their own
+group, so that parallel trends need only hold within a group (conditional parallel trends on
+a discrete covariate, by exact matching: Heckman, Ichimura & Todd 1997; Abadie 2005). Shocks a
+group shares (a store's air, its technician's rota, its season) then fall out of the
+comparison instead of into the estimate. Treated entities with no untreated entity of their
+group in those weeks are left out and counted as ``unmatched``.
 """
 
 from __future__ import annotations
@@ -66,8 +74,11 @@ class Stack:
         return int(np.unique(self.entity[self.treated == treated]).size)
 
 
-def stack(panel: EntityWeeks, kind: str, window: Window) -> Stack:
-    """Build the blocks for one action kind; see the module docstring."""
+def stack(panel: EntityWeeks, kind: str, window: Window, within: np.ndarray | None = None
+          ) -> Stack:
+    """Build the blocks for one action kind; see the module docstring. ``within``: per entity
+    code, the label of its group (a store); each week's treated entities are then compared
+    only with untreated entities of their own group, one block per week and group."""
     log = panel.actions[kind]
     n_entities, n_weeks = panel.days.shape
     acted = np.zeros((n_entities, n_weeks + 1), dtype=np.int64)
@@ -92,19 +103,23 @@ def stack(panel: EntityWeeks, kind: str, window: Window) -> Stack:
     for week in cohorts:
         start, stop = week - window.before, week + window.after + 1
         seen = observed[:, week]
-        chosen = pairs[0, clean & (pairs[1] == week)]
-        chosen = chosen[seen[chosen]]
-        comparison = np.flatnonzero(((running[:, stop] - running[:, start]) == 0) & seen)
-        if chosen.size == 0:
-            continue
-        if comparison.size == 0:
-            unmatched += chosen.size
-            continue
-        index = len(kept_weeks)
-        kept_weeks.append(week)
-        entity += [chosen, comparison]
-        cohort += [np.full(chosen.size + comparison.size, index)]
-        treated += [np.ones(chosen.size, bool), np.zeros(comparison.size, bool)]
+        acted = pairs[0, clean & (pairs[1] == week)]
+        acted = acted[seen[acted]]
+        untreated = np.flatnonzero(((running[:, stop] - running[:, start]) == 0) & seen)
+        groups = [None] if within is None else np.unique(within[acted])
+        for group in groups:
+            chosen = acted if group is None else acted[within[acted] == group]
+            comparison = untreated if group is None else untreated[within[untreated] == group]
+            if chosen.size == 0:
+                continue
+            if comparison.size == 0:
+                unmatched += chosen.size
+                continue
+            index = len(kept_weeks)
+            kept_weeks.append(week)
+            entity += [chosen, comparison]
+            cohort += [np.full(chosen.size + comparison.size, index)]
+            treated += [np.ones(chosen.size, bool), np.zeros(comparison.size, bool)]
     if kept_weeks:
         rows = np.concatenate(entity)
         blocks = np.concatenate(cohort)

@@ -89,6 +89,9 @@ class EffectOptions:
     # A column of the attributes whose entities the bootstrap resamples together; none: the
     # config's ``timeline.attributes.cluster_by``, else each entity alone.
     cluster_by: str | None = None
+    # A column of the attributes within whose groups treated and comparison entities are
+    # compared; none: the config's ``timeline.attributes.compare_within``, else the fleet.
+    compare_within: str | None = None
 
     def check(self) -> None:
         if self.before < 1 or self.after < 1:
@@ -129,12 +132,13 @@ def study(
         progress("step 2/3: scoring the bundle's snapshots for the model's estimate")
         check = ModelCheck(bundle, inputs, panel)
     unit, clusters = cluster_codes(timeline, inputs, panel, options.cluster_by)
+    scope, within = group_codes(timeline, inputs, panel, options.compare_within)
     window = Window(options.before, options.after)
     rows, weekly, kinds = [], [], {}
     for link in links(spec):
         if link.action_kind not in kinds:
             progress(f"step 3/3: measuring {link.action_kind}")
-            built = stack(panel, link.action_kind, window)
+            built = stack(panel, link.action_kind, window, within)
             following = after_failures(
                 panel, panel.actions[link.action_kind], options.failure_days,
                 options.failure_excess, around=(7.0 * options.before, 7.0 * (options.after + 1)))
@@ -147,11 +151,12 @@ def study(
         model = None
         if check is not None and link.fix_kind is not None:
             model = check.estimate(link.codes, built)
-        rows.append(_row(link, built, following, fit, model, options, bundle is not None, unit))
+        rows.append(_row(link, built, following, fit, model, options, bundle is not None, unit,
+                         scope))
     table = pd.DataFrame(rows)
     weeks = pd.concat(weekly, ignore_index=True) if weekly else pd.DataFrame(
         columns=["action_kind", "week", "treated_per_1000", "comparison_per_1000"])
-    return EffectResult(table, weeks, _summary(panel, table, options, unit))
+    return EffectResult(table, weeks, _summary(panel, table, options, unit, scope))
 
 
 def run_effect(
@@ -189,12 +194,34 @@ def cluster_codes(timeline: TimelineSpec, inputs: TimelineInputs, panel: EntityW
     column = column or (attributes.cluster_by if attributes is not None else None)
     if column is None or (attributes is not None and column == attributes.entity):
         return "entity", None
+    return column, _attribute_codes(timeline, inputs, panel, column, "cluster by")
+
+
+def group_codes(timeline: TimelineSpec, inputs: TimelineInputs, panel: EntityWeeks,
+                column: str | None) -> tuple[str, np.ndarray | None]:
+    """Within what comparisons are made: ``fleet`` (none) or an attributes column, and per
+    entity code its group label. The column is ``column``, else the config's
+    ``attributes.compare_within``."""
+    attributes = timeline.attributes
+    column = column or (attributes.compare_within if attributes is not None else None)
+    if column is None:
+        return "fleet", None
+    if attributes is not None and column == attributes.entity:
+        raise DataError(f"compare within {column!r}: that is the entity itself, and an entity "
+                        "has no untreated twin; name a grouping of entities (a store, a line)")
+    return column, _attribute_codes(timeline, inputs, panel, column, "compare within")
+
+
+def _attribute_codes(timeline: TimelineSpec, inputs: TimelineInputs, panel: EntityWeeks,
+                     column: str, purpose: str) -> np.ndarray:
+    """Per entity code, the code of its value of the attributes' ``column``."""
+    attributes = timeline.attributes
     if inputs.attributes is None or attributes is None:
-        raise DataError(f"clustering by {column!r} needs the attributes table: give it "
+        raise DataError(f"{purpose} {column!r} needs the attributes table: give it "
                         "(--attributes) and an attributes section in the config")
     frame = inputs.attributes
     if column not in frame.columns:
-        raise DataError(f"cluster by {column!r}: the attributes have no such column (they have "
+        raise DataError(f"{purpose} {column!r}: the attributes have no such column (they have "
                         f"{', '.join(map(str, frame.columns))})")
     require_columns(frame, "attributes", [attributes.entity])
     values = pd.Series(frame[column].to_numpy(), index=frame[attributes.entity].astype("string"))
@@ -203,14 +230,14 @@ def cluster_codes(timeline: TimelineSpec, inputs: TimelineInputs, panel: EntityW
     if missing.any():
         raise DataError(
             f"{int(missing.sum())} entities with readings have no {column!r} in the attributes "
-            f"(first: {panel.names[missing][0]!r}); give every entity a value, or cluster by "
+            f"(first: {panel.names[missing][0]!r}); give every entity a value, or {purpose} "
             "another column")
-    return column, pd.factorize(values.astype("string"))[0].astype(np.int64)
+    return pd.factorize(values.astype("string"))[0].astype(np.int64)
 
 
 def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
-         model: ModelEstimate | None, options: EffectOptions, with_bundle: bool, unit: str
-         ) -> dict[str, Any]:
+         model: ModelEstimate | None, options: EffectOptions, with_bundle: bool, unit: str,
+         scope: str) -> dict[str, Any]:
     warnings = _warnings(built, following, options)
     notes = []
     row: dict[str, Any] = {
@@ -220,6 +247,7 @@ def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
         "warning": "; ".join(warnings),
         "treated_entities": built.count(True), "treated_episodes": int(built.treated.sum()),
         "comparison_entities": built.count(False), "cohorts": int(built.cohort_weeks.size),
+        "compared_within": scope,
         "cluster_by": unit, "clusters": 0 if fit is None else fit.clusters_,
         "treated_clusters": 0 if fit is None else fit.treated_clusters_,
         "weeks_before": options.before, "weeks_after": options.after,
@@ -314,16 +342,18 @@ def _weeks(kind: str, window: Window, weekly: dict[str, np.ndarray]) -> pd.DataF
     })
 
 
-def _summary(panel: EntityWeeks, table: pd.DataFrame, options: EffectOptions, unit: str
-             ) -> dict[str, Any]:
+def _summary(panel: EntityWeeks, table: pd.DataFrame, options: EffectOptions, unit: str,
+             scope: str) -> dict[str, Any]:
     records = json.loads(table.drop(columns="file").to_json(orient="records"))
     observed = float(panel.days.sum())
     return {
         "generated_at": datetime.now(UTC).isoformat(timespec="seconds"),
         "method": "stacked difference-in-differences over entity-weeks, clean comparison "
-                  f"entities per treatment week, cluster bootstrap over {unit} "
+                  f"entities per treatment week within the {scope}, cluster bootstrap over "
+                  f"{unit} "
                   "(docs/effect.md)",
         "resampled": unit,
+        "compared_within": scope,
         "options": asdict(options),
         "counts": {"entities": int(panel.names.size), "weeks": panel.weeks,
                    "entity_days": observed, "events": int(panel.events.sum()),

@@ -95,11 +95,14 @@ class AttributesInput(Strict):
     """Static attributes, one row per entity, joined onto every snapshot. ``cluster_by``
     names a column of the attributes file (listed in ``columns`` or not) whose entities share
     shocks, as the cases of one store share its air and its cleaning rota: the fix-effect
-    study's bootstrap resamples them together."""
+    study's bootstrap resamples them together. ``compare_within`` names such a column too:
+    the study then compares each treated entity only with untreated entities of its own
+    group (its store), so shocks the group shares fall out of the comparison."""
 
     entity: str
     columns: tuple[str, ...] = Field(min_length=1)
     cluster_by: str | None = None
+    compare_within: str | None = None
 
 
 class SnapshotCadence(Strict):

@@ -40,8 +40,11 @@ CONFIG = Path(__file__).resolve().parents[2] / "fixtures" / "demo" / "timeline.y
 OPTIONS = EffectOptions(bootstrap=299)
 
 
-def _spec(plan: tuple[PlantedFix, ...] = DEFAULT_PLAN) -> DatasetSpec:
+def _spec(plan: tuple[PlantedFix, ...] = DEFAULT_PLAN, within: str | None = "store_id"
+          ) -> DatasetSpec:
+    """The planted config (cases compared within their store), or across the fleet."""
     raw = planted_config(plan)
+    raw["timeline"]["attributes"]["compare_within"] = within
     raw.pop("training", None)
     raw.pop("explain", None)
     return DatasetSpec.model_validate(raw)
@@ -91,11 +94,21 @@ def test_card_krueger_difference_in_differences() -> None:
 def test_planted_effects_are_recovered() -> None:
     # Six fresh seeds of a smaller fleet; 95 % intervals should cover the truth on about 5.7
     # of them, and 4 or more covers happen with probability 0.998 when the intervals are right.
+    # Across the fleet the 40 % cut is told from zero on 4 or more; compared within stores,
+    # whose intervals are some 10 % wider, it is not asked to be (docs/effect.md, Checks).
     covered = {"coil_cleaning": 0, "firmware_update": 0}
+    within = dict(covered)
     found = 0
     for seed in range(21, 27):
         timeline, planted = planted_timeline(cases=160, days=300, seed=seed)
-        result = study(_spec(), _inputs(timeline), OPTIONS).table.set_index("action_kind")
+        stored = study(_spec(), _inputs(timeline), OPTIONS).table.set_index("action_kind")
+        for kind in within:
+            row = stored.loc[kind]
+            truth = planted.truth(kind, OPTIONS.after)
+            within[kind] += int(row["effect_low"] <= truth <= row["effect_high"])
+        assert (stored["compared_within"] == "store_id").all()
+        result = study(_spec(within=None), _inputs(timeline), OPTIONS).table.set_index(
+            "action_kind")
         for kind in covered:
             row = result.loc[kind]
             truth = planted.truth(kind, OPTIONS.after)
@@ -112,6 +125,7 @@ def test_planted_effects_are_recovered() -> None:
         assert repair["warning"].startswith("follows failures")
         assert np.isnan(repair["effect_per_1000"]) and np.isnan(repair["treated_before_per_1000"])
     assert min(covered.values()) >= 4, covered
+    assert min(within.values()) >= 4, within
     assert found >= 4
 
 
@@ -465,3 +479,33 @@ def test_conveyor_planted_fixes_and_their_truth() -> None:
     plain = generate(30, 70, seed=4)
     assert plain.planted is None
     assert not plain.maintenance["action"].isin(["jam_guard"]).any()
+
+
+def test_comparing_within_groups_keeps_each_treated_entity_beside_its_own_group() -> None:
+    # Ten entities in three groups (A: E00-E03, B: E04-E07, C: E08-E09). Actions: E00 and E04
+    # in week 10, E05 in week 12, E08 and E09 in week 15; 6 weeks either side. Worked by
+    # hand: over the fleet, week 10's two treated are compared with the five entities without
+    # an action in weeks 4-16 (E01-E03, E06, E07). Within groups, week 10 makes one block per
+    # group (E00 beside E01-E03; E04 beside E06-E07), week 12 one (E05 beside E06-E07: E04
+    # acted inside its window), and C's two, treated in one week, have no untreated twin.
+    inputs = _uniform_logs(30, [10, None, None, None, 10, 12, None, None, 15, 15])
+    panel = entity_weeks(_minimal_spec().timeline, inputs)  # type: ignore[arg-type]
+    assert list(panel.names) == [f"E{i:02d}" for i in range(10)]
+    fleet = stack(panel, "service", Window())
+    first = fleet.cohort == 0
+    assert sorted(fleet.entity[first & fleet.treated]) == [0, 4]
+    assert sorted(fleet.entity[first & ~fleet.treated]) == [1, 2, 3, 6, 7]
+    assert fleet.unmatched == 0
+    groups = np.array([0, 0, 0, 0, 1, 1, 1, 1, 2, 2])
+    within = stack(panel, "service", Window(), groups)
+    blocks = [(sorted(within.entity[(within.cohort == c) & within.treated].tolist()),
+               sorted(within.entity[(within.cohort == c) & ~within.treated].tolist()))
+              for c in range(within.cohort_weeks.size)]
+    assert sorted(blocks) == [([0], [1, 2, 3]), ([4], [6, 7]), ([5], [6, 7])]
+    assert within.unmatched == 2
+
+
+def test_comparing_within_a_grouping_needs_the_attributes() -> None:
+    inputs = _uniform_logs(30, [10, None, None, None])
+    with pytest.raises(DataError, match="compare within 'store' needs the attributes table"):
+        study(_minimal_spec(), inputs, EffectOptions(bootstrap=99, compare_within="store"))
