@@ -315,6 +315,8 @@ def test_command_writes_csvs_summary_and_page(tmp_path: Path, capsys) -> None:  
         assert column in coil.columns
     page = (out / "report.html").read_text()
     assert "Did the fix work?" in page and "<script" not in page and "follows failures" in page
+    # The planted config compares within stores, and the page says so.
+    assert "compared within store_id" in page and "of its own store_id only" in page
     assert "no number: follows failures" in capsys.readouterr().out
     # Resampling its few stores gives every measured row a note, printed under the row.
     assert causeline([*args[:-2], "--cluster-by", "store_id", "--out", str(tmp_path / "s")]) == 0
