@@ -175,7 +175,7 @@ def conveyor_coverage(drives: int, days: int, seeds: range) -> None:
 
 # Fleet sizes and their first seeds: fresh ones, never used in the tests (21-26) or while
 # building and checking the study (100-119, 5000-5019, 6000-6019, 7000-9059, 11000-17019,
-# 22000-25019, 30000-30099, 31000-31059, 32000-32059).
+# 22000-27019, 30000-30099, 31000-31059, 32000-32059).
 SIZES = ((320, 365, 18000), (160, 300, 19000), (100, 365, 20000))
 
 
