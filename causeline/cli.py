@@ -137,8 +137,8 @@ def _parser() -> argparse.ArgumentParser:
                         "entity alone)")
     effect.add_argument("--compare-within", metavar="COLUMN", help="a column of the "
                         "attributes (a store, a line): compare treated entities only with "
-                        "untreated ones of their own group (default: the config's "
-                        "attributes.compare_within, else the whole fleet)")
+                        "untreated ones of their own group; 'fleet': across the whole fleet "
+                        "(default: the config's attributes.compare_within, else the fleet)")
     effect.add_argument("--min-treated", type=int, default=10, help="fewest treated (and "
                         "comparison) entities for a number (default 10)")
     effect.add_argument("--seed", type=int, default=0, help="bootstrap seed (default 0)")

@@ -30,6 +30,9 @@ import numpy as np
 
 from causeline.service.effect.panel import EntityWeeks
 
+# What ``compare_within`` names for comparisons across the whole fleet.
+FLEET = "fleet"
+
 
 @dataclass(frozen=True)
 class Window:

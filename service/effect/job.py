@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 
 from causeline.service.bundle.load import Bundle
-from causeline.service.effect.design import Stack, Window, stack
+from causeline.service.effect.design import FLEET, Stack, Window, stack
 from causeline.service.effect.estimate import Rates, StackedDiD
 from causeline.service.effect.link import Link, links
 from causeline.service.effect.model import ModelCheck, ModelEstimate
@@ -90,7 +90,8 @@ class EffectOptions:
     # config's ``timeline.attributes.cluster_by``, else each entity alone.
     cluster_by: str | None = None
     # A column of the attributes within whose groups treated and comparison entities are
-    # compared; none: the config's ``timeline.attributes.compare_within``, else the fleet.
+    # compared; none: the config's ``timeline.attributes.compare_within``, else the fleet;
+    # "fleet": the fleet, whatever the config says.
     compare_within: str | None = None
 
     def check(self) -> None:
@@ -125,7 +126,8 @@ def study(
     if timeline.actions is None:
         raise DataError("the config's timeline has no actions section: there is no action "
                         "to measure")
-    progress("step 1/3: counting events and observed days per entity and week")
+    steps = 3 if bundle is not None else 2
+    progress(f"step 1/{steps}: counting events and observed days per entity and week")
     panel = entity_weeks(timeline, inputs)
     check = None
     if bundle is not None:
@@ -137,7 +139,7 @@ def study(
     rows, weekly, kinds = [], [], {}
     for link in links(spec):
         if link.action_kind not in kinds:
-            progress(f"step 3/3: measuring {link.action_kind}")
+            progress(f"step {steps}/{steps}: measuring {link.action_kind}")
             built = stack(panel, link.action_kind, window, within)
             following = after_failures(
                 panel, panel.actions[link.action_kind], options.failure_days,
@@ -201,11 +203,12 @@ def group_codes(timeline: TimelineSpec, inputs: TimelineInputs, panel: EntityWee
                 column: str | None) -> tuple[str, np.ndarray | None]:
     """Within what comparisons are made: ``fleet`` (none) or an attributes column, and per
     entity code its group label. The column is ``column``, else the config's
-    ``attributes.compare_within``."""
+    ``attributes.compare_within``; ``fleet`` compares across the fleet whatever the config
+    says."""
     attributes = timeline.attributes
     column = column or (attributes.compare_within if attributes is not None else None)
-    if column is None:
-        return "fleet", None
+    if column is None or column == FLEET:
+        return FLEET, None
     if attributes is not None and column == attributes.entity:
         raise DataError(f"compare within {column!r}: that is the entity itself, and an entity "
                         "has no untreated twin; name a grouping of entities (a store, a line)")
@@ -238,7 +241,7 @@ def _attribute_codes(timeline: TimelineSpec, inputs: TimelineInputs, panel: Enti
 def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
          model: ModelEstimate | None, options: EffectOptions, with_bundle: bool, unit: str,
          scope: str) -> dict[str, Any]:
-    warnings = _warnings(built, following, options)
+    warnings = _warnings(built, following, options, scope)
     notes = []
     row: dict[str, Any] = {
         "action_kind": link.action_kind, "fix_kind": link.fix_kind or "",
@@ -288,8 +291,9 @@ def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
         if math.isnan(rates.low):
             notes.append("too few bootstrap replicates had a usable block for an interval")
     if built.unmatched:
-        notes.append(f"{built.unmatched} treated episodes left out: no entity went without "
-                     "the action in their weeks")
+        where = "" if scope == FLEET else f" of the same {scope}"
+        notes.append(f"{built.unmatched} treated episodes left out: no entity{where} went "
+                     "without the action in their weeks")
     row["note"] = NOTES_JOINED_BY.join(notes)
     row.update({
         "model_effect_per_1000": float("nan") if model is None else model.effect,
@@ -307,7 +311,8 @@ def _row(link: Link, built: Stack, following: Following, fit: StackedDiD | None,
     return row
 
 
-def _warnings(built: Stack, following: Following, options: EffectOptions) -> list[str]:
+def _warnings(built: Stack, following: Following, options: EffectOptions, scope: str
+              ) -> list[str]:
     out = []
     if following.follows:
         out.append(
@@ -321,9 +326,12 @@ def _warnings(built: Stack, following: Following, options: EffectOptions) -> lis
             f"no usable action: none has {options.before} weeks of logs before its week and "
             f"{options.after} after, free of other actions of the kind")
     elif built.cohort_weeks.size == 0:
+        where = "every other entity" if scope == FLEET else f"every other entity of its {scope}"
         out.append(
-            "no comparison group: in the weeks around every action, every other entity had one "
-            "too, so nothing separates the fix from the season")
+            f"no comparison group: in the weeks around every action, {where} had one too, so "
+            "nothing separates the fix from the season"
+            + ("" if scope == FLEET else " (compared within each group; "
+               "--compare-within fleet compares across the fleet)"))
     else:
         treated, comparison = built.count(True), built.count(False)
         if treated < options.min_treated:
@@ -345,12 +353,12 @@ def _weeks(kind: str, window: Window, weekly: dict[str, np.ndarray]) -> pd.DataF
 def _summary(panel: EntityWeeks, table: pd.DataFrame, options: EffectOptions, unit: str,
              scope: str) -> dict[str, Any]:
     records = json.loads(table.drop(columns="file").to_json(orient="records"))
+    where = "across the fleet" if scope == FLEET else f"within each {scope}"
     observed = float(panel.days.sum())
     return {
         "generated_at": datetime.now(UTC).isoformat(timespec="seconds"),
         "method": "stacked difference-in-differences over entity-weeks, clean comparison "
-                  f"entities per treatment week within the {scope}, cluster bootstrap over "
-                  f"{unit} "
+                  f"entities per treatment week {where}, cluster bootstrap over {unit} "
                   "(docs/effect.md)",
         "resampled": unit,
         "compared_within": scope,

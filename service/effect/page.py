@@ -6,6 +6,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from causeline.service.effect.design import FLEET
 from causeline.service.report import charts, write_page
 
 if TYPE_CHECKING:
@@ -44,13 +45,13 @@ def write_report(path: Path, result: EffectResult, caution: str) -> None:
     options = result.summary["options"]
     resampled = result.summary["resampled"]
     unit = "entities" if resampled == "entity" else f"entities grouped by {resampled}"
-    within = result.summary.get("compared_within", "fleet")
+    within = result.summary.get("compared_within", FLEET)
     write_page(path, "effect.html", title="Did the fix work?",
                subtitle=f"Weeks {counts['first_week']} to {counts['last_week']}; "
                         f"{options['before']} weeks before and {options['after']} after each "
                         f"action; {options['level']:.0%} intervals from "
                         f"{options['bootstrap']} bootstrap samples of {unit}"
-                        + ("" if within == "fleet" else f"; compared within {within}"),
+                        + ("" if within == FLEET else f"; compared within {within}"),
                facts=facts, caution=caution, rows=rows, forest=forest, plots=plots,
                level=options["level"], before=options["before"], after=options["after"],
-               within=None if within == "fleet" else within)
+               within=None if within == FLEET else within)

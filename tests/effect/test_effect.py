@@ -316,7 +316,7 @@ def test_command_writes_csvs_summary_and_page(tmp_path: Path, capsys) -> None:  
     page = (out / "report.html").read_text()
     assert "Did the fix work?" in page and "<script" not in page and "follows failures" in page
     # The planted config compares within stores, and the page says so.
-    assert "compared within store_id" in page and "of its own store_id only" in page
+    assert "compared within store_id" in page and "of the same store_id only" in page
     assert "no number: follows failures" in capsys.readouterr().out
     # Resampling its few stores gives every measured row a note, printed under the row.
     assert causeline([*args[:-2], "--cluster-by", "store_id", "--out", str(tmp_path / "s")]) == 0
@@ -511,3 +511,16 @@ def test_comparing_within_a_grouping_needs_the_attributes() -> None:
     inputs = _uniform_logs(30, [10, None, None, None])
     with pytest.raises(DataError, match="compare within 'store' needs the attributes table"):
         study(_minimal_spec(), inputs, EffectOptions(bootstrap=99, compare_within="store"))
+
+
+def test_fleet_compares_across_the_fleet_whatever_the_config_says() -> None:
+    # The planted config compares within stores; "fleet" overrides it, and the result is the
+    # one of a config without compare_within.
+    timeline, _ = planted_timeline(cases=60, days=240, seed=3)
+    inputs = _inputs(timeline)
+    forced = study(_spec(), inputs, EffectOptions(bootstrap=99, compare_within="fleet")).table
+    plain = study(_spec(within=None), inputs, EffectOptions(bootstrap=99)).table
+    assert (forced["compared_within"] == "fleet").all()
+    pd.testing.assert_frame_equal(forced, plain)
+    within = study(_spec(), inputs, EffectOptions(bootstrap=99)).table
+    assert (within["compared_within"] == "store_id").all()
