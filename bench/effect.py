@@ -28,13 +28,11 @@ from common import ROOT, report
 MEASURED = ("coil_cleaning", "firmware_update")
 
 
-def _spec(within: str | None = "store_id"):  # type: ignore[no-untyped-def]
-    """The planted config; ``within``: its ``compare_within`` (None: across the fleet)."""
+def _spec():  # type: ignore[no-untyped-def]
     from causeline.service.spec.dataset import DatasetSpec
     from fixtures.demo.planted import DEFAULT_PLAN, planted_config
 
     raw = planted_config(DEFAULT_PLAN)
-    raw["timeline"]["attributes"]["compare_within"] = within
     raw.pop("training", None)
     raw.pop("explain", None)
     return DatasetSpec.model_validate(raw)
@@ -74,15 +72,15 @@ def coverage(cases: int, days: int, seeds: range) -> None:
     ``compare_within``)."""
     import numpy as np
 
+    from causeline.service.effect.design import FLEET
     from causeline.service.effect.job import EffectOptions, study
     from causeline.service.features.logs import TimelineInputs
     from fixtures.demo.timeline import planted_timeline
 
     units = {"entity": EffectOptions(), "store": EffectOptions(cluster_by="store_id"),
-             "entity_across_fleet": EffectOptions()}
+             "entity_across_fleet": EffectOptions(compare_within=FLEET)}
     after = units["entity"].after
     spec = _spec()
-    fleet = _spec(within=None)
     covered = {(unit, kind): 0 for unit in units for kind in MEASURED}
     width = {(unit, kind): [] for unit in units for kind in MEASURED}
     zero, warned, worst = 0, 0, (0.0, None, None)
@@ -96,8 +94,7 @@ def coverage(cases: int, days: int, seeds: range) -> None:
         inputs = TimelineInputs(timeline.readings, timeline.excursions, timeline.maintenance,
                                 timeline.cases)
         for unit, options in units.items():
-            table = study(fleet if unit == "entity_across_fleet" else spec, inputs,
-                          options).table.set_index("action_kind")
+            table = study(spec, inputs, options).table.set_index("action_kind")
             for kind in MEASURED:
                 row = table.loc[kind]
                 truth = planted.truth(kind, after)

@@ -30,6 +30,7 @@ from causeline.service.bundle.load import Bundle
 from causeline.service.explain.explainer import Explainer, Explanation
 from causeline.service.explain.score import probability
 from causeline.service.explain.treeparse import NUMERICAL, Forest, parse_forest
+from causeline.service.features.follow import carry
 from causeline.service.spec.dataset import ChangeSpec, FeatureSpec
 
 MAX_CHANGES = 2
@@ -395,9 +396,8 @@ def common_action(finder: ActionFinder, rows: np.ndarray) -> CommonAction | None
         else:
             moved[:, position] = target
         for follower in finder.followers.get(position, []):
-            shift = follower.slope * np.nan_to_num(moved[:, position] - flagged[:, position])
-            moved[:, follower.position] = np.clip(flagged[:, follower.position] + shift,
-                                                  follower.low, follower.high)
+            carry(flagged, moved, position, follower.position, follower.slope, follower.low,
+                  follower.high)
     after = finder.probability(moved)
     description = "; ".join(f"{finder.names[i]} -> {_text(finder.shown(i, t))}"
                             for i, t in targets.items())

@@ -150,11 +150,12 @@ def bootstrap(
     full, full_bins = ranked, bins
     scale = 1.0
     size = ranked.y.size
-    codes, count = (np.arange(size), size) if units is None else _unit_codes(units)
+    # Per event its unit's number; None: each event its own unit, the weights as drawn.
+    codes, count = (None, size) if units is None else _unit_codes(units)
     if size > BOOTSTRAP_ROWS:
-        if units is None:
+        if codes is None:
             subset = rng.choice(size, BOOTSTRAP_ROWS, replace=False)
-            codes, kept = np.arange(BOOTSTRAP_ROWS), BOOTSTRAP_ROWS
+            kept = BOOTSTRAP_ROWS
         else:
             kept = max(1, int(np.ceil(count * BOOTSTRAP_ROWS / size)))
             chosen = np.zeros(count, dtype=bool)
@@ -167,7 +168,8 @@ def bootstrap(
     aucs, briers = np.empty(replicates), np.empty(replicates)
     rates = np.empty((replicates, nbins))
     for r in range(replicates):
-        w = rng.poisson(1.0, count).astype(float)[codes]
+        drawn = rng.poisson(1.0, count).astype(float)
+        w = drawn if codes is None else drawn[codes]
         aucs[r], briers[r] = ranked.auc(w), ranked.brier(w)
         events = np.bincount(bins, weights=w * ranked.y, minlength=nbins)
         counts = np.bincount(bins, weights=w, minlength=nbins)

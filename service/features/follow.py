@@ -60,3 +60,12 @@ def follower_slopes(spec: DatasetSpec, names: Sequence[str],
                 out.setdefault(feature.name, {})[other] = s
                 taken.add(other)
     return out
+
+
+def carry(before: np.ndarray, after: np.ndarray, driver: int, follower: int, rate: float,
+          low: float, high: float) -> None:
+    """Move column ``follower`` of ``after`` with column ``driver``: its value in ``before``
+    plus ``rate`` times the driver's change (none where either driver value is missing), kept
+    within ``[low, high]`` (the training range). In place on ``after``."""
+    shift = rate * np.nan_to_num(after[:, driver] - before[:, driver])
+    after[:, follower] = np.clip(before[:, follower] + shift, low, high)

@@ -31,7 +31,7 @@ import pandas as pd
 from causeline.service.bundle.load import Bundle
 from causeline.service.explain.reasons import ReasonCatalogue, format_value
 from causeline.service.explain.score import probability
-from causeline.service.features.follow import slope
+from causeline.service.features.follow import carry, slope
 from causeline.service.files.tables import to_numbers
 
 How = Literal["cap", "floor", "set"]
@@ -135,28 +135,27 @@ def _follow(
         categorical = spec.feature(target.feature).kind == "categorical"
         kept = None if categorical else stats[target.feature].follows
         if kept is not None:
-            change = np.nan_to_num(after[:, fixed] - before[:, fixed])
             for other, rate in kept.items():
-                column = names.index(other)
                 low, high = stats[other].minimum, stats[other].maximum
-                after[:, column] = np.clip(before[:, column] + rate * change,
-                                           -np.inf if low is None else low,
-                                           np.inf if high is None else high)
+                carry(before, after, fixed, names.index(other), rate,
+                      -np.inf if low is None else low, np.inf if high is None else high)
             continue
         for other in codes[target.code].features:
             feature = spec.feature(other)
             if other == target.feature or feature.role != "observable" or feature.kind != "numeric":
                 continue
             column = names.index(other)
+            present = reference[:, column][~np.isnan(reference[:, column])]
+            if not present.size:
+                continue
+            low, high = present.min(), present.max()
             if categorical:
                 shift = _category_shift(reference[:, fixed], reference[:, column],
                                         before[:, fixed], after[:, fixed])
+                after[:, column] = np.clip(before[:, column] + shift, low, high)
             else:
-                shift = slope(reference[:, fixed], reference[:, column]) * np.nan_to_num(
-                    after[:, fixed] - before[:, fixed])
-            present = reference[:, column][~np.isnan(reference[:, column])]
-            if present.size:
-                after[:, column] = np.clip(before[:, column] + shift, present.min(), present.max())
+                carry(before, after, fixed, column,
+                      slope(reference[:, fixed], reference[:, column]), low, high)
 
 
 def _category_shift(

@@ -305,9 +305,10 @@ def _bisected(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int
     no clear cause that the starting candidates had joined to it. A cause is never split into
     two causes (that is what merging undoes)."""
     splits, k = 0, 0
+    everyone = np.ones(mix.shape[0], dtype=bool)
     kept, clear = _judged(mix, lift, profiles, size)
+    labels, _ = assign(mix, everyone, profiles)
     while k < profiles.shape[0] and splits < MAX_SPLITS:
-        labels, _ = assign(mix, np.ones(mix.shape[0], dtype=bool), profiles)
         members = mix[labels == k]
         if clear[k] and members.shape[0] >= 2 * size:
             halves, counts = _halves(members)
@@ -318,6 +319,7 @@ def _bisected(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int
                 if (now_kept & ~now_clear).sum() > (kept & ~clear).sum() and \
                         (now_kept & now_clear).sum() <= (kept & clear).sum():
                     profiles, kept, clear = refined, now_kept, now_clear
+                    labels, _ = assign(mix, everyone, profiles)
                     splits, k = splits + 1, 0
                     continue
         k += 1
@@ -330,7 +332,6 @@ def _halves(members: np.ndarray, rounds: int = 30) -> tuple[np.ndarray, np.ndarr
     first = members[distances(members, members.mean(axis=0)[None])[:, 0].argmax()]
     second = members[distances(members, first[None])[:, 0].argmax()]
     centres = np.vstack([first, second])
-    side = np.zeros(members.shape[0], dtype=np.int64)
     for _ in range(rounds):
         side = distances(members, centres).argmin(axis=1)
         if side.min() == side.max():
