@@ -108,7 +108,6 @@ def main(argv: list[str] | None = None) -> int:
         report(f"{name}_seed_{seed}_full_fit_groups", int(finder.profiles_.shape[0]))
         report(f"{name}_seed_{seed}_full_fit_rounds", int(finder.rounds_))
         report(f"{name}_seed_{seed}_full_fit_fringes_parted", int(finder.splits_))
-        report(f"{name}_seed_{seed}_full_fit_fringes_joined", int(finder.joins_))
         report(f"{name}_seed_{seed}_full_fit_ungrouped_share", float(np.mean(full < 0)))
         for sample in args.samples:
             labels, fitted, took = grouped(data, sample)
@@ -116,7 +115,6 @@ def main(argv: list[str] | None = None) -> int:
             worst[sample] = min(worst.get(sample, 1.0), ari)
             report(f"{name}_seed_{seed}_sample_{sample}_fit_s", took)
             report(f"{name}_seed_{seed}_sample_{sample}_fringes_parted", int(fitted.splits_))
-            report(f"{name}_seed_{seed}_sample_{sample}_fringes_joined", int(fitted.joins_))
             report(f"{name}_seed_{seed}_sample_{sample}_ari_vs_full_fit", ari)
     for sample, ari in worst.items():
         report(f"{name}_sample_{sample}_ari_vs_full_fit_worst_seed", ari)

@@ -11,7 +11,7 @@ of its score. An event with no positive cause contribution has no cause to share
 ungrouped.
 
 Groups. Distances between mixes are total variation, half the L1 distance: the share of the mix
-two events do *not* have in common. Groups are found in five steps:
+two events do *not* have in common. Groups are found in four steps:
 
 1. candidates: HDBSCAN (Campello, Moulavi & Sander 2013; the ``hdbscan`` library of McInnes,
    Healy & Astels 2017) on the mixes of at most :data:`FIT_SAMPLE` events, so the number of
@@ -35,13 +35,7 @@ two events do *not* have in common. Groups are found in five steps:
    stay apart and one of them is held, so a cause is parted from a fringe of events of no
    clear cause that its starting candidate had taken in, and never split into two causes.
    Whether HDBSCAN offers such a fringe as a candidate of its own depends on the sample; this
-   step finds such a fringe when two-means does;
-5. a fringe joined: the mirror of step 4. A held profile most of whose members join one cause
-   when it is taken away is joined to that cause, unless step 4's test then parts it again.
-   Two-means cuts a cause along its widest spread, which need not be the fringe, so a cause
-   joined to its fringe may stay joined while the same events offered apart stay apart; with
-   both steps, a cause and a fringe stay apart only when two-means tells them apart, from
-   either start.
+   step finds such a fringe when two-means does (not always: docs/scaling.md).
 
 Why held profiles and rounds to a fixed point: where most events have no clear cause (every
 run of a machine taken as an event, say), their mixes fill the space between the causes. When
@@ -51,10 +45,9 @@ settled, and a fixed number of rounds froze one moment of that drift. On 10^6 AI
 events, one round more or less moved the groups of a fit on every event to ARI 0.81 against
 themselves, and a fit on a 20,000-event sample agreed with it at ARI 0.92. Holding no-cause
 profiles and refining to a fixed point, the two fits agreed at ARI 0.972-0.997 over three seeds,
-and with steps 4 and 5 at 0.974-0.997; on the display-case fleet (2 x 10^5 events) at 0.942-0.945,
-with step 4 at 0.942-0.999 and with both at 0.996-0.999: without them the fits could settle on
-different fixed points, one parting a fringe from a cause that the other joins to it
-(docs/scaling.md).
+and with step 4 at 0.974-0.997; on the display-case fleet (2 x 10^5 events) at 0.942-0.945,
+and with step 4 at 0.942-0.999: the fits can settle on different fixed points, one of them
+parting a fringe from a cause that the other joins to it (docs/scaling.md).
 
 Profiles are found on a sample drawn by a hash of the event ids and read in that hash's order,
 so the same events give the same groups in any row order, and both engines fit the same
@@ -189,9 +182,9 @@ class GroupFinder:
     follows that number).
     Fitted: ``profiles_`` (groups x codes), ``held_`` (profiles of no clear cause, whose nearest
     events stay ungrouped), ``rounds_`` (refining rounds run), ``splits_`` (fringes parted in
-    step 4), ``joins_`` (fringes joined in step 5), ``min_group_size_`` (for all events),
-    ``sample_min_group_``, ``min_samples_``, and ``candidate_labels_`` (HDBSCAN's cluster of
-    each fitted row, -1 for noise) with their number ``candidates_``.
+    step 4), ``min_group_size_`` (for all events), ``sample_min_group_``, ``min_samples_``,
+    and ``candidate_labels_`` (HDBSCAN's cluster of each fitted row, -1 for noise) with their
+    number ``candidates_``.
     """
 
     def __init__(self, min_group_size: int | None = None, min_samples: int = MIN_SAMPLES) -> None:
@@ -214,7 +207,7 @@ class GroupFinder:
         self.min_samples_ = int(min(self.min_samples, size))
         self.profiles_ = np.zeros((0, mix.shape[1]))
         self.held_ = np.zeros((0, mix.shape[1]))
-        self.rounds_ = self.splits_ = self.joins_ = 0
+        self.rounds_ = self.splits_ = 0
         if n <= size:
             return self  # too few events for even one group: all are ungrouped
         # The hash order, ties by mix: the same events always reach HDBSCAN in the same order.
@@ -242,7 +235,6 @@ class GroupFinder:
         profiles, counts = _merged(profiles, counts)
         profiles, self.rounds_ = _refined(mix, profiles, size)
         profiles, self.splits_ = _bisected(mix, lift, profiles, size)
-        profiles, self.joins_ = _joined(mix, lift, profiles, size)
         kept, clear = _judged(mix, lift, profiles, size)
         self.profiles_ = profiles[kept & clear]
         self.held_ = profiles[kept & ~clear]
@@ -262,7 +254,7 @@ class GroupFinder:
             "sample_min_group_size": self.sample_min_group_,
             "candidates": self.candidates_, "groups": int(self.profiles_.shape[0]),
             "held_profiles": int(self.held_.shape[0]), "refining_rounds": self.rounds_,
-            "fringes_parted": self.splits_, "fringes_joined": self.joins_,
+            "fringes_parted": self.splits_,
             "merge_distance": MERGE_DISTANCE, "assign_distance": ASSIGN_DISTANCE,
         }
 
@@ -305,20 +297,18 @@ def _judged(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int
     return counts >= size, lifted >= MIN_LIFT
 
 
-def _bisected(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int,
-              only: int | None = None) -> tuple[np.ndarray, int]:
+def _bisected(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int
+              ) -> tuple[np.ndarray, int]:
     """Profiles after trying to split each cause in two (a bisecting step, as in bisecting
     k-means), and the splits kept. A split is kept only when refining keeps the two parts
     apart and it adds a held profile, not a cause: it parts a cause from a fringe of events of
     no clear cause that the starting candidates had joined to it. A cause is never split into
-    two causes (that is what merging undoes). ``only``: try that profile alone, once."""
-    splits, k = 0, 0 if only is None else only
+    two causes (that is what merging undoes)."""
+    splits, k = 0, 0
     everyone = np.ones(mix.shape[0], dtype=bool)
     kept, clear = _judged(mix, lift, profiles, size)
     labels, _ = assign(mix, everyone, profiles)
     while k < profiles.shape[0] and splits < MAX_SPLITS:
-        if only is not None and (k != only or splits):
-            break
         members = mix[labels == k]
         if clear[k] and members.shape[0] >= 2 * size:
             halves, counts = _halves(members)
@@ -334,37 +324,6 @@ def _bisected(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int
                     continue
         k += 1
     return profiles, splits
-
-
-def _joined(mix: np.ndarray, lift: np.ndarray, profiles: np.ndarray, size: int
-            ) -> tuple[np.ndarray, int]:
-    """Profiles after giving held fringes back to the cause they border, and the joins kept.
-    A held profile most of whose members join one cause when it is taken away is joined to
-    that cause, unless the bisecting step then parts it again: so a cause and a fringe of it
-    stay apart only when two-means tells them apart, whichever of the two the starting
-    candidates offered. The causes must stay the same in number."""
-    joins, k = 0, 0
-    everyone = np.ones(mix.shape[0], dtype=bool)
-    kept, clear = _judged(mix, lift, profiles, size)
-    while k < profiles.shape[0] and joins < MAX_SPLITS:
-        if kept[k] and not clear[k]:
-            before, _ = assign(mix, everyone, profiles)
-            members = before == k
-            trial, _ = _refined(mix, np.delete(profiles, k, axis=0), size)
-            now_kept, now_clear = _judged(mix, lift, trial, size)
-            after, _ = assign(mix, everyone, trial)
-            moved = after[members]
-            gone = moved[moved >= 0]
-            into = np.bincount(gone, minlength=trial.shape[0]) if gone.size else np.zeros(1)
-            target = int(into.argmax())
-            if (now_kept & now_clear).sum() == (kept & clear).sum() and \
-                    into[target] * 2 > members.sum() and now_clear[target] and \
-                    _bisected(mix, lift, trial, size, only=target)[1] == 0:
-                profiles, kept, clear = trial, now_kept, now_clear
-                joins, k = joins + 1, 0
-                continue
-        k += 1
-    return profiles, joins
 
 
 def _halves(members: np.ndarray, rounds: int = 30) -> tuple[np.ndarray, np.ndarray]:

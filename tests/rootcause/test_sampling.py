@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from causeline.service.rootcause.grouping import _bisected, _joined, _judged, _refined, assign
+from causeline.service.rootcause.grouping import _bisected, _judged, _refined, assign
 
 
 def test_events_nearest_a_held_profile_stay_ungrouped() -> None:
@@ -51,48 +51,3 @@ def test_a_cause_is_never_split_into_two_causes() -> None:
     profiles, splits = _bisected(mix, lift, joined, 50)
     assert splits == 0
     np.testing.assert_array_equal(profiles, joined)
-
-
-def _cause_spread_and_fringe(spread: int, share: float) -> tuple[np.ndarray, np.ndarray]:
-    """300 events of a cause [1, 0, 0] and ``spread`` more of it reaching into a third code,
-    [1 - share, 0, share] (lift 2 all), and 120 of a fringe [0.55, 0.45, 0] (lift 0.1)."""
-    mix = np.vstack([np.tile([1.0, 0.0, 0.0], (300, 1)),
-                     np.tile([1 - share, 0.0, share], (spread, 1)),
-                     np.tile([0.55, 0.45, 0.0], (120, 1))])
-    lift = np.concatenate([np.full(300 + spread, 2.0), np.full(120, 0.1)])
-    return mix, lift
-
-
-def _fit_from(mix: np.ndarray, lift: np.ndarray, start: np.ndarray) -> np.ndarray:
-    profiles = _bisected(mix, lift, _refined(mix, start, 50)[0], 50)[0]
-    return _joined(mix, lift, profiles, 50)[0]
-
-
-def test_a_fringe_is_joined_where_two_means_would_not_part_it() -> None:
-    # The mirror of the test above. The cause spreads towards a third code, and the events
-    # farthest from its mean are there, so two-means (seeded by the farthest events) cuts that
-    # spread off: a second cause, not a held profile, so the bisecting step leaves one profile
-    # holding every event, their mean [(300 + 45 + 66) / 520, 54 / 520, 55 / 520] =
-    # [0.790, 0.104, 0.106]. Started instead from the cause and the fringe apart (as a sample's
-    # candidates may offer them), the two stay apart after refining and bisecting; joining the
-    # held fringe gives the same single profile as the other start.
-    mix, lift = _cause_spread_and_fringe(100, 0.55)
-    joined_start = mix.mean(axis=0, keepdims=True)
-    apart_start = np.vstack([mix[:400].mean(axis=0), mix[400:].mean(axis=0)])
-    apart = _bisected(mix, lift, _refined(mix, apart_start, 50)[0], 50)[0]
-    assert apart.shape[0] == 2
-    expected = [[411 / 520, 54 / 520, 55 / 520]]
-    np.testing.assert_allclose(_joined(mix, lift, apart, 50)[0], expected, atol=1e-12)
-    np.testing.assert_allclose(_fit_from(mix, lift, joined_start), expected, atol=1e-12)
-
-
-def test_a_fringe_two_means_would_part_stays_apart() -> None:
-    # With the spread nearer the cause (150 events at [0.6, 0, 0.4]), the fringe is what lies
-    # farthest: two-means parts it as a held profile from either start, so joining it back is
-    # undone and both starts end with the cause and the fringe apart.
-    mix, lift = _cause_spread_and_fringe(150, 0.4)
-    apart_start = np.vstack([mix[:450].mean(axis=0), mix[450:].mean(axis=0)])
-    for start in (mix.mean(axis=0, keepdims=True), apart_start):
-        profiles = _fit_from(mix, lift, start)
-        assert sorted(map(tuple, np.round(profiles, 3))) == [(0.55, 0.45, 0.0),
-                                                             (0.867, 0.0, 0.133)]
