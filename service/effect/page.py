@@ -19,7 +19,10 @@ def write_report(path: Path, result: EffectResult, caution: str) -> None:
               for r in table.itertuples()]
     forest = charts.intervals(
         labels, table["effect_per_1000"], table["effect_low"], table["effect_high"],
-        reference=table["model_effect_per_1000"], label="effects per 1,000 entity-days",
+        # The model's estimate only when there is one (a bundle was given): no legend for
+        # a marker the chart never draws.
+        reference=table["model_effect_per_1000"] if table["model_effect_per_1000"].notna().any()
+        else None, label="effects per 1,000 entity-days",
         estimate_name="measured, with its interval", reference_name="model estimate",
         fmt="{:+.1f}")
     plots = []

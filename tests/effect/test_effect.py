@@ -291,6 +291,8 @@ def test_model_estimate_beside_the_measured_effect(tmp_path: Path) -> None:
         row = table.loc[kind]
         assert row["model_targets"] == target
         assert row["model_snapshots"] > 0 and row["model_effect_per_1000"] < 0, row.to_dict()
+    # With a bundle the chart draws the model's estimate, and its legend names it.
+    assert "model estimate" in (tmp_path / "out" / "report.html").read_text()
 
 
 def test_command_writes_csvs_summary_and_page(tmp_path: Path, capsys) -> None:  # type: ignore[no-untyped-def]
@@ -315,6 +317,11 @@ def test_command_writes_csvs_summary_and_page(tmp_path: Path, capsys) -> None:  
         assert column in coil.columns
     page = (out / "report.html").read_text()
     assert "Did the fix work?" in page and "<script" not in page and "follows failures" in page
+    # No bundle, so no model estimate: the legend does not offer one.
+    assert "model estimate" not in page
+    weeks = (out / "weeks.csv").read_text().splitlines()[1:]
+    assert weeks and all(len(cell.partition(".")[2]) <= 3 for line in weeks
+                         for cell in line.split(",")[2:])
     # The planted config compares within stores, and the page says so.
     assert "compared within store_id" in page and "of the same store_id only" in page
     assert "no number: follows failures" in capsys.readouterr().out
