@@ -1,4 +1,5 @@
-"""Shared set-up for benchmarks: a demo bundle trained once into a scratch folder."""
+"""Shared set-up for benchmarks: the demo fleet's bundle and the public AI4I file's, trained
+into a scratch folder."""
 
 from __future__ import annotations
 
@@ -24,6 +25,18 @@ def demo_bundle(folder: Path | None = None, cases: int = 320, days: int = 365) -
     generate(cases=cases, days=days).to_parquet(data, index=False)
     train(ROOT / "fixtures" / "demo" / "config.yaml", data, folder / "bundle")
     return folder / "bundle"
+
+
+AI4I = ROOT / "fixtures" / "ai4i2020"
+
+
+def ai4i_bundle(bundle: Path) -> Path:
+    """A bundle trained on the public AI4I 2020 file into ``bundle``, unless one is there."""
+    from causeline.training.pipeline import train
+
+    if not (bundle / "manifest.json").exists():
+        train(AI4I / "config.yaml", AI4I / "ai4i2020.csv", bundle)
+    return bundle
 
 
 def rate(function: Callable[[], object], rows: int, repeat: int = 3) -> float:

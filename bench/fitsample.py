@@ -30,7 +30,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import numpy as np
 from sklearn.metrics import adjusted_rand_score
 
-from bench.common import ROOT, demo_bundle, report
+from bench.common import ai4i_bundle, demo_bundle, report
 
 
 def _bundle(domain: str, folder: Path) -> Path:
@@ -38,13 +38,7 @@ def _bundle(domain: str, folder: Path) -> Path:
         if not (folder / "demo" / "bundle" / "manifest.json").exists():
             demo_bundle(folder / "demo")
         return folder / "demo" / "bundle"
-    bundle = folder / "ai4i-bundle"
-    if not (bundle / "manifest.json").exists():
-        from causeline.training.pipeline import train
-
-        source = ROOT / "fixtures" / "ai4i2020"
-        train(source / "config.yaml", source / "ai4i2020.csv", bundle)
-    return bundle
+    return ai4i_bundle(folder / "ai4i-bundle")
 
 
 def explained(domain: str, rows: int, seed: int, folder: Path) -> dict[str, np.ndarray]:

@@ -27,7 +27,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import pandas as pd
 from sklearn.metrics import adjusted_rand_score
 
-from bench.common import report
+from bench.common import AI4I, ai4i_bundle, report
 
 TRAIN_SEEDS = {"demo": 7, "timeline": 7, "ai4i": 3, "jobs": 5}
 # Sizes relative to each scenario's default; AI4I's default holds fewer events, so it runs at
@@ -83,12 +83,10 @@ def _public_ai4i(folder: Path) -> None:
     published failure modes (single-mode failures, no random failure)."""
     from causeline.service.bundle.load import load_bundle
     from causeline.service.rootcause.local import run_rootcause
-    from causeline.training.pipeline import train
 
-    fixtures = Path(__file__).resolve().parents[1] / "fixtures" / "ai4i2020"
-    data = fixtures / "ai4i2020.csv"
-    train(fixtures / "config.yaml", data, folder / "ai4i-public")
-    result = run_rootcause(load_bundle(folder / "ai4i-public"), data, folder / "ai4i-public-rc")
+    data = AI4I / "ai4i2020.csv"
+    result = run_rootcause(load_bundle(ai4i_bundle(folder / "ai4i-public")), data,
+                           folder / "ai4i-public-rc")
     table = pd.read_csv(data)
     flags = table[["TWF", "HDF", "PWF", "OSF"]]
     single = (table["Machine failure"] == 1) & (flags.sum(axis=1) == 1) & (table["RNF"] == 0)

@@ -31,7 +31,7 @@ import pandas as pd
 import psutil
 from sklearn.metrics import adjusted_rand_score
 
-from bench.common import demo_bundle, report
+from bench.common import ai4i_bundle, demo_bundle, report
 
 DAYS = 365
 PART_ROWS = 100_000
@@ -90,13 +90,9 @@ ALL_EVENTS = (200_000,)
 
 def all_events(folder: Path, rows: int) -> None:
     """Every row an event, one Parquet file of one row group: both engines, 1 and 2 workers."""
-    from causeline.training.pipeline import train
     from fixtures.ai4i2020.simulate import simulate
 
-    root = Path(__file__).resolve().parents[1] / "fixtures" / "ai4i2020"
-    bundle = folder / "ai4i-bundle"
-    if not (bundle / "manifest.json").exists():
-        train(root / "config.yaml", root / "ai4i2020.csv", bundle)
+    bundle = ai4i_bundle(folder / "ai4i-bundle")
     data = folder / f"ai4i-all-events-{rows}.parquet"
     if not data.exists():
         table = simulate(rows=rows, seed=41)

@@ -52,7 +52,7 @@ from typing import Any  # noqa: E402
 
 from fastapi import FastAPI, Request  # noqa: E402
 
-from bench.common import demo_bundle, report  # noqa: E402
+from bench.common import AI4I, ai4i_bundle, demo_bundle, report  # noqa: E402
 
 SERVERS = ("bare", "score")  # "score" is causeline serve
 UNITS = {"us": 1e-3, "ms": 1.0, "s": 1e3}
@@ -271,25 +271,15 @@ def _mean_batch(port: int) -> float:
     return totals.get("causeline_explain_batch_rows_sum", 0.0) / count if count else float("nan")
 
 
-AI4I = ROOT / "fixtures" / "ai4i2020"
-
-
-def ai4i_bundle(folder: Path) -> Path:
-    """A bundle trained on the public AI4I 2020 file (the set-up the serving targets name)."""
-    from causeline.training.pipeline import train
-
-    train(AI4I / "config.yaml", AI4I / "ai4i2020.csv", folder / "bundle")
-    return folder / "bundle"
-
-
-def _events(bundle: Path, rows: int = 200, source: Path | None = None) -> list[dict[str, Any]]:
+def _events(bundle: Path, rows: int = 200, source: Path | None = None,
+            loaded: Any = None) -> list[dict[str, Any]]:
     """The last ``rows`` events of ``source`` (default: the table beside the bundle, else a
-    small demo fleet), with only the bundle's fields."""
+    small demo fleet), with only the fields of the bundle (``loaded``: already loaded)."""
     import pandas as pd
 
     from causeline.service.bundle.load import load_bundle
 
-    loaded = load_bundle(bundle)
+    loaded = loaded or load_bundle(bundle)
     columns = [*loaded.builder.required_columns, loaded.spec.id]
     source = source or bundle.parent / "cases.parquet"
     if source.is_file():
@@ -301,13 +291,11 @@ def _events(bundle: Path, rows: int = 200, source: Path | None = None) -> list[d
     return json.loads(table[columns].tail(rows).to_json(orient="records"))
 
 
-def kernel_cost(bundle: Path, events: list[dict[str, Any]]) -> tuple[float, str]:
+def kernel_cost(loaded: Any, events: list[dict[str, Any]]) -> tuple[float, str]:
     """Microseconds of the SHAP kernel per single-event call (warm, in this process), and the
     model's size: the share of a request's time that grows with the model."""
-    from causeline.service.bundle.load import load_bundle
     from causeline.service.explain.fastshap import FastTreeExplainer
 
-    loaded = load_bundle(bundle)
     engine = FastTreeExplainer(loaded.booster)
     rows = [loaded.builder.transform_records([event]).values for event in events]
     for row in rows:
@@ -428,8 +416,11 @@ def main(argv: list[str] | None = None) -> int:
         bundle, source = ai4i_bundle(scratch / "ai4i"), AI4I / "ai4i2020.csv"
     else:
         bundle = demo_bundle(scratch / "demo")
-    events = _events(bundle, source=source)
-    kernel, size = kernel_cost(bundle, events)
+    from causeline.service.bundle.load import load_bundle
+
+    loaded = load_bundle(bundle)
+    events = _events(bundle, source=source, loaded=loaded)
+    kernel, size = kernel_cost(loaded, events)
     script = scratch / "post.lua"
     script.write_text(lua_script([json.dumps({"events": [event]}) for event in events]), "utf-8")
     env = server_env(scratch)

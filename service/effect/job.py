@@ -177,7 +177,7 @@ def run_effect(
         write_table(escape_frame(result.table), staging / EFFECTS)
         for name, part in result.table.groupby("file", sort=False):
             write_table(escape_frame(part.drop(columns="file")), staging / f"{name}.csv")
-        # Rates per 1,000 entity-weeks: three decimals are finer than any count behind them.
+        # Rates per 1,000 entity-days: three decimals are finer than any count behind them.
         write_table(result.weekly.round(3), staging / WEEKS)
         (staging / SUMMARY).write_text(
             json.dumps(result.summary, indent=2, ensure_ascii=False, allow_nan=False) + "\n",

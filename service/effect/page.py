@@ -48,7 +48,7 @@ def write_report(path: Path, result: EffectResult, caution: str) -> None:
     options = result.summary["options"]
     resampled = result.summary["resampled"]
     unit = "entities" if resampled == "entity" else f"entities grouped by {resampled}"
-    within = result.summary.get("compared_within", FLEET)
+    within = result.summary["compared_within"]
     write_page(path, "effect.html", title="Did the fix work?",
                subtitle=f"Weeks {counts['first_week']} to {counts['last_week']}; "
                         f"{options['before']} weeks before and {options['after']} after each "
