@@ -319,6 +319,8 @@ def test_command_writes_csvs_summary_and_page(tmp_path: Path, capsys) -> None:  
     assert "Did the fix work?" in page and "<script" not in page and "follows failures" in page
     # No bundle, so no model estimate: the legend does not offer one.
     assert "model estimate" not in page
+    # A kind with no number shows empty rate cells, not a bare arrow.
+    assert '<td class="num"> → </td>' not in page
     weeks = (out / "weeks.csv").read_text().splitlines()[1:]
     assert weeks and all(len(cell.partition(".")[2]) <= 3 for line in weeks
                          for cell in line.split(",")[2:])
