@@ -1,7 +1,8 @@
 """Groups found on a sample against groups found on every event, at up to 10^6 events.
 
 Every row an event: a fresh AI4I simulation (fixtures/ai4i2020/simulate.py, bundle trained on
-the public file) or the demo fleet (fixtures/demo/generate.py, all rows labelled events), so
+the public file), the demo fleet (fixtures/demo/generate.py) or nightly pipeline jobs
+(fixtures/jobs/generate.py, bundle trained on its default draw), all rows taken as events, so
 most events have no real cause and their mixes fill the space between the causes, the hard
 case for a sample. Per domain, size and seed the events are explained once (cached in
 ``CAUSELINE_BENCH_DIR``, default the temporary folder); then the profiles are found on every
@@ -30,7 +31,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 import numpy as np
 from sklearn.metrics import adjusted_rand_score
 
-from bench.common import ai4i_bundle, demo_bundle, report
+from bench.common import ROOT, ai4i_bundle, demo_bundle, report
 
 
 def _bundle(domain: str, folder: Path) -> Path:
@@ -38,6 +39,17 @@ def _bundle(domain: str, folder: Path) -> Path:
         if not (folder / "demo" / "bundle" / "manifest.json").exists():
             demo_bundle(folder / "demo")
         return folder / "demo" / "bundle"
+    if domain == "jobs":
+        bundle = folder / "jobs" / "bundle"
+        if not (bundle / "manifest.json").exists():
+            from causeline.training.pipeline import train
+            from fixtures.jobs.generate import generate
+
+            data = folder / "jobs" / "runs.parquet"
+            data.parent.mkdir(parents=True, exist_ok=True)
+            generate().to_parquet(data, index=False)
+            train(ROOT / "fixtures" / "jobs" / "config.yaml", data, bundle)
+        return bundle
     return ai4i_bundle(folder / "ai4i-bundle")
 
 
@@ -56,6 +68,10 @@ def explained(domain: str, rows: int, seed: int, folder: Path) -> dict[str, np.n
             from fixtures.demo.generate import generate
 
             table = generate(cases=max(1, round(rows / 365)), days=365, seed=seed)
+        elif domain == "jobs":
+            from fixtures.jobs.generate import generate
+
+            table = generate(pipelines=max(1, round(rows / 365)), days=365, seed=seed)
         else:
             from fixtures.ai4i2020.simulate import simulate
 
@@ -84,10 +100,10 @@ def grouped(data: dict[str, np.ndarray], sample: int | None) -> tuple[np.ndarray
 
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--domain", choices=["ai4i", "demo"], default="ai4i")
+    parser.add_argument("--domain", choices=["ai4i", "demo", "jobs"], default="ai4i")
     parser.add_argument("--rows", type=int, default=200_000)
     parser.add_argument("--seeds", type=int, nargs="+", default=[41])
-    parser.add_argument("--samples", type=int, nargs="+", default=[20_000, 50_000, 100_000])
+    parser.add_argument("--samples", type=int, nargs="+", default=[20_000, 60_000, 100_000])
     args = parser.parse_args(argv)
     folder = Path(os.environ.get("CAUSELINE_BENCH_DIR") or tempfile.gettempdir())
     folder = folder / "causeline-bench-fitsample"

@@ -106,7 +106,7 @@ def _parser() -> argparse.ArgumentParser:
     _engine_arguments(rootcause)
     rootcause.add_argument(
         "--fit-sample", type=int, metavar="N",
-        help="find the groups on at most N events with a cause (default 20000), drawn by a "
+        help="find the groups on at most N events with a cause (default 60000), drawn by a "
         "hash of their ids; the others join the nearest group",
     )
     rootcause.add_argument(
